@@ -1,0 +1,163 @@
+"""The bank: the on-disk feature cache that ingest writes and training reads.
+
+A bank is a folder:
+
+- ``spectra.npy``: ``(N, bins, frames)`` [0, 1] log-magnitude spectrograms
+  (float16 or float32), memory-mapped on read;
+- ``index.json``: the format version, the audio spec, the resolved settings and,
+  per clip (row order), its name, relative source path, category, original sample
+  rate, channels, duration, peak dBFS and a size + mtime fingerprint;
+- ``ingest-report.json``: what was accepted, skipped and ignored, and why.
+
+Writes go to temporary names first and are renamed into place, so an
+interrupted ingest leaves the previous bank readable.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pipeline.config import AudioSpec, spec_from_dict
+from pipeline.errors import BankError, PresetError
+
+BANK_FORMAT = 1
+SPECTRA_FILE = "spectra.npy"
+INDEX_FILE = "index.json"
+REPORT_FILE = "ingest-report.json"
+
+
+@dataclass
+class Bank:
+    """An opened bank. ``spectra`` is a read-only memory map."""
+
+    path: Path
+    audio: AudioSpec
+    settings: dict[str, Any]
+    clips: list[dict[str, Any]]
+    spectra: np.ndarray = field(repr=False)
+
+    def __len__(self) -> int:
+        return len(self.clips)
+
+    @property
+    def names(self) -> list[str]:
+        return [c["name"] for c in self.clips]
+
+    @property
+    def categories(self) -> list[str]:
+        """Sorted category names; clips directly in SOURCE have category ``None``."""
+        return sorted({c["category"] for c in self.clips if c.get("category")})
+
+
+def write_json_atomic(path: Path, data: Any) -> None:
+    """Write JSON to ``path`` via a temporary file and a rename."""
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    try:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(data, fh, indent=2, ensure_ascii=False, allow_nan=False)
+            fh.write("\n")
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def read_json(path: Path, what: str) -> Any:
+    try:
+        return json.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise BankError(f"{path}: {what} not found") from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise BankError(f"{path}: {what} is unreadable ({exc})") from None
+
+
+class BankWriter:
+    """Stream rows into a new ``spectra.npy`` and commit it with its index.
+
+    >>> w = BankWriter(bank_dir, spec, n_clips)   # doctest: +SKIP
+    >>> w.put(0, unit_spectrogram)                # any order, each row once
+    >>> w.commit(clips, settings, report)
+    """
+
+    def __init__(self, path: Path, audio: AudioSpec, n_clips: int) -> None:
+        self.path = Path(path)
+        self.audio = audio
+        self.path.mkdir(parents=True, exist_ok=True)
+        self._tmp = self.path / f".{SPECTRA_FILE}.tmp-{os.getpid()}"
+        shape = (n_clips, audio.n_bins, audio.n_frames)
+        self._rows = np.lib.format.open_memmap(
+            self._tmp, mode="w+", dtype=np.dtype(audio.spectra_dtype), shape=shape
+        )
+
+    def put(self, row: int, unit: np.ndarray) -> None:
+        self._rows[row] = unit
+
+    def commit(
+        self, clips: list[dict[str, Any]], settings: dict[str, Any], report: dict[str, Any]
+    ) -> None:
+        if len(clips) != self._rows.shape[0]:
+            raise ValueError("one index entry per spectra row is required")
+        self._rows.flush()
+        del self._rows
+        os.replace(self._tmp, self.path / SPECTRA_FILE)
+        index = {
+            "format": BANK_FORMAT,
+            "tool": "shotsmith",
+            "audio": settings["audio"],
+            "settings": settings,
+            "shape": [len(clips), self.audio.n_bins, self.audio.n_frames],
+            "clips": clips,
+        }
+        write_json_atomic(self.path / INDEX_FILE, index)
+        write_json_atomic(self.path / REPORT_FILE, report)
+
+    def abort(self) -> None:
+        if hasattr(self, "_rows"):
+            del self._rows
+        self._tmp.unlink(missing_ok=True)
+
+
+def read_index(path: Path) -> dict[str, Any]:
+    """The parsed ``index.json`` of a bank folder, checked for format."""
+    path = Path(path)
+    if not path.is_dir():
+        raise BankError(f"{path}: bank folder not found (run 'shotsmith ingest' first)")
+    index = read_json(path / INDEX_FILE, "bank index")
+    if not isinstance(index, dict) or index.get("tool") != "shotsmith" or "clips" not in index:
+        raise BankError(f"{path / INDEX_FILE}: not a shotsmith bank index")
+    if index.get("format", 0) > BANK_FORMAT:
+        raise BankError(
+            f"{path / INDEX_FILE}: bank format {index['format']} is newer than this "
+            f"shotsmith reads ({BANK_FORMAT}); upgrade shotsmith"
+        )
+    return index
+
+
+def open_bank(path: Path) -> Bank:
+    """Open a bank folder; ``spectra`` is memory-mapped read-only."""
+    path = Path(path)
+    index = read_index(path)
+    try:
+        audio = spec_from_dict(AudioSpec, index["audio"], "audio")
+    except PresetError as exc:
+        raise BankError(f"{path / INDEX_FILE}: bad audio settings ({exc})") from None
+    try:
+        spectra = np.load(path / SPECTRA_FILE, mmap_mode="r")
+    except FileNotFoundError:
+        raise BankError(f"{path / SPECTRA_FILE}: spectra not found (re-run ingest)") from None
+    except (OSError, ValueError) as exc:
+        raise BankError(f"{path / SPECTRA_FILE}: unreadable spectra ({exc})") from None
+    expected = (len(index["clips"]), audio.n_bins, audio.n_frames)
+    if spectra.shape != expected:
+        raise BankError(
+            f"{path / SPECTRA_FILE}: shape {spectra.shape} does not match the index "
+            f"{expected} (re-run ingest)"
+        )
+    return Bank(path, audio, index.get("settings", {}), index["clips"], spectra)
