@@ -1,0 +1,412 @@
+"""The ``shotsmith`` command line: parse, call the Python API, print.
+
+No logic lives here beyond turning options into settings overrides and results
+into output. Heavy modules (torch above all) are imported inside the commands
+that need them, so ``shotsmith --help`` and ``shotsmith ingest`` start fast.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from functools import wraps
+from pathlib import Path
+from typing import Annotated, Any, Optional
+
+import typer
+
+from pipeline import __version__
+from pipeline.errors import ShotsmithError
+
+app = typer.Typer(
+    name="shotsmith",
+    help="Train a small VAE on your own one-shots and render new ones, on a laptop CPU.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+_state = {"debug": False}
+
+
+def _version(value: bool) -> None:
+    if value:
+        typer.echo(f"shotsmith {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _root(
+    debug: Annotated[bool, typer.Option("--debug", help="Show full tracebacks on errors.")] = False,
+    version: Annotated[
+        bool, typer.Option("--version", callback=_version, is_eager=True, help="Print the version.")
+    ] = False,
+) -> None:
+    _state["debug"] = debug or os.environ.get("SHOTSMITH_DEBUG") == "1"
+
+
+def _friendly(func):
+    """Turn the tool's errors into one line on stderr and exit code 1."""
+
+    @wraps(func)
+    def wrapper(*args, **kwargs):
+        try:
+            return func(*args, **kwargs)
+        except ShotsmithError as exc:
+            if _state["debug"]:
+                raise
+            typer.echo(f"error: {exc}", err=True)
+            raise typer.Exit(1) from None
+        except KeyboardInterrupt:
+            if _state["debug"]:
+                raise
+            typer.echo("interrupted", err=True)
+            raise typer.Exit(130) from None
+        except OSError as exc:
+            if _state["debug"]:
+                raise
+            where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
+            typer.echo(f"error: {where}{exc.strerror or exc}", err=True)
+            raise typer.Exit(1) from None
+
+    return wrapper
+
+
+def _emit(summary: dict[str, Any], as_json: bool, human: str) -> None:
+    if as_json:
+        typer.echo(json.dumps(summary, ensure_ascii=False, allow_nan=False))
+    else:
+        typer.echo(human)
+
+
+def _show_progress(as_json: bool) -> bool:
+    return sys.stderr.isatty() or os.environ.get("SHOTSMITH_PROGRESS") == "1"
+
+
+# Options shared by several commands -------------------------------------------------------
+
+PresetOpt = Annotated[
+    str, typer.Option("--preset", help="Preset name from presets/ (tiny, drums, long) or a TOML file.")
+]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON summary object on stdout.")]
+OverwriteOpt = Annotated[
+    bool, typer.Option("--overwrite", help="Replace existing output files of the same name.")
+]
+IterOpt = Annotated[
+    Optional[int], typer.Option("--iterations", min=0, help="Fast Griffin-Lim iterations.")
+]
+BitDepthOpt = Annotated[
+    Optional[str], typer.Option("--bit-depth", help="WAV sample format: 16, 24 or 32f.")
+]
+PeakOpt = Annotated[
+    Optional[float], typer.Option("--peak-db", max=0.0, help="Peak ceiling in dBFS (default -1).")
+]
+LoudOpt = Annotated[
+    Optional[float],
+    typer.Option("--loudness", max=0.0, help="Integrated loudness target in LUFS (BS.1770)."),
+]
+SeedOpt = Annotated[Optional[int], typer.Option("--seed", help="Random seed (repeatable output).")]
+JobsOpt = Annotated[
+    Optional[int], typer.Option("--jobs", min=1, help="Parallel decoding processes (default: all cores).")
+]
+
+
+def _render_overrides(iterations, bit_depth, peak_db, loudness) -> dict[str, Any]:
+    if bit_depth is not None and bit_depth not in ("16", "24", "32f"):
+        raise typer.BadParameter(f"{bit_depth!r} must be 16, 24 or 32f", param_hint="--bit-depth")
+    return {"iterations": iterations, "bit_depth": bit_depth, "peak_db": peak_db, "loudness": loudness}
+
+
+def _settings(preset: str, **tables: dict[str, Any]):
+    from pipeline.config import load_settings
+
+    return load_settings(preset, overrides=tables)
+
+
+# Commands -------------------------------------------------------------------------------
+
+
+@app.command()
+@_friendly
+def ingest(
+    source: Annotated[Path, typer.Argument(help="Folder of one-shots (searched recursively).")],
+    bank: Annotated[Path, typer.Option("--bank", help="Bank folder to create or update.")],
+    preset: PresetOpt = "drums",
+    sample_rate: Annotated[
+        Optional[int], typer.Option("--sample-rate", help="Resample every file to this rate (Hz).")
+    ] = None,
+    duration: Annotated[
+        Optional[float], typer.Option("--duration", help="Fit every clip to this length (s).")
+    ] = None,
+    jobs: JobsOpt = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """Scan SOURCE, decode every usable one-shot and store its spectrogram in a bank."""
+    from pipeline.ingest import ingest_folder
+    from pipeline.progress import progress_bar
+
+    settings = _settings(preset, audio={"sample_rate": sample_rate, "duration": duration})
+    with progress_bar("ingest", enabled=_show_progress(as_json)) as bar:
+        summary = ingest_folder(source, bank, settings, jobs=jobs, progress=bar)
+    s = summary.to_dict()
+    _emit(
+        s,
+        as_json,
+        f"{s['accepted']} clips in {bank} ({s['decoded']} decoded, {s['reused']} reused), "
+        f"{s['skipped']} skipped, {s['ignored']} ignored; reasons in {bank / 'ingest-report.json'}",
+    )
+
+
+@app.command()
+@_friendly
+def resynth(
+    source: Annotated[Path, typer.Argument(help="Folder of one-shots to resynthesize.")],
+    out: Annotated[Path, typer.Option("--out", help="Output folder for WAVs and manifest.json.")],
+    preset: PresetOpt = "drums",
+    iterations: IterOpt = None,
+    bit_depth: BitDepthOpt = None,
+    peak_db: PeakOpt = None,
+    loudness: LoudOpt = None,
+    overwrite: OverwriteOpt = False,
+    jobs: JobsOpt = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """Spectrogram -> Griffin-Lim -> WAV for every file, no model: the ceiling resynthesis sets."""
+    from pipeline.progress import progress_bar
+    from pipeline.resynth import resynth_folder
+
+    settings = _settings(preset, render=_render_overrides(iterations, bit_depth, peak_db, loudness))
+    with progress_bar("resynth", enabled=_show_progress(as_json)) as bar:
+        s = resynth_folder(source, out, settings, overwrite=overwrite, jobs=jobs, progress=bar)
+    _emit(s, as_json, _written_line(s, out))
+
+
+def _written_line(s: dict[str, Any], out: Path) -> str:
+    line = f"wrote {s.get('written', 0)} WAVs and {out / 'manifest.json'}"
+    if s.get("skipped"):
+        line += f" ({s['skipped']} files skipped, reasons in the manifest)"
+    if s.get("median_sc_db") is not None:
+        line += f"; median spectral convergence {s['median_sc_db']:.1f} dB"
+    return line
+
+
+@app.command()
+@_friendly
+def train(
+    bank: Annotated[Path, typer.Argument(help="Bank folder written by 'shotsmith ingest'.")],
+    model: Annotated[Path, typer.Option("--model", help="Model file to write.")],
+    preset: PresetOpt = "drums",
+    epochs: Annotated[Optional[int], typer.Option("--epochs", min=1, help="Maximum epochs.")] = None,
+    latent_dim: Annotated[
+        Optional[int], typer.Option("--latent-dim", min=1, help="Size of the latent code.")
+    ] = None,
+    beta: Annotated[Optional[float], typer.Option("--beta", min=0.0, help="KL weight.")] = None,
+    seed: SeedOpt = None,
+    batch_size: Annotated[Optional[int], typer.Option("--batch-size", min=1)] = None,
+    resume: Annotated[
+        bool, typer.Option("--resume", help="Continue an interrupted run from its checkpoint.")
+    ] = False,
+    device: Annotated[str, typer.Option("--device", help="auto, cpu or cuda.")] = "auto",
+    as_json: JsonOpt = False,
+) -> None:
+    """Train a VAE on a bank; writes one self-contained model file."""
+    from pipeline.progress import progress_bar
+    from pipeline.train import train_model
+
+    settings = _settings(
+        preset,
+        model={"latent_dim": latent_dim},
+        train={"epochs": epochs, "beta": beta, "seed": seed, "batch_size": batch_size},
+    )
+    with progress_bar("train", enabled=_show_progress(as_json)) as bar:
+
+        def on_epoch(info: dict[str, Any]) -> None:
+            bar(
+                info["epoch"],
+                info["epochs"],
+                loss=info.get("train_loss"),
+                val=info.get("val_loss"),
+                recon=info.get("recon"),
+                kl=info.get("kl"),
+            )
+
+        summary = train_model(
+            bank, model, settings, resume=resume, progress=on_epoch, device=device
+        )
+    s = summary.to_dict()
+    human = (
+        f"{s['stopped']} after {s['epochs']} epochs: best validation loss "
+        f"{s['best_val_loss']:.4g} (recon {s['best_val_recon']:.4g}, KL {s['best_val_kl']:.4g}); "
+        f"model in {model}"
+    )
+    if s.get("resume_command"):
+        human += f"\nto resume: {s['resume_command']}"
+        typer.echo(f"to resume: {s['resume_command']}", err=True)
+    _emit(s, as_json, human)
+
+
+@app.command()
+@_friendly
+def generate(
+    model: Annotated[Path, typer.Argument(help="Model file written by 'shotsmith train'.")],
+    out: Annotated[Path, typer.Option("--out", help="Output folder.")],
+    n: Annotated[int, typer.Option("-n", "--count", min=1, help="How many one-shots.")] = 16,
+    temperature: Annotated[
+        float, typer.Option("--temperature", min=0.0, help="Spread of the prior samples.")
+    ] = 1.0,
+    near: Annotated[
+        Optional[str], typer.Option("--near", help="Sample near this category of the library.")
+    ] = None,
+    seed: SeedOpt = None,
+    iterations: IterOpt = None,
+    bit_depth: BitDepthOpt = None,
+    peak_db: PeakOpt = None,
+    loudness: LoudOpt = None,
+    overwrite: OverwriteOpt = False,
+    as_json: JsonOpt = False,
+) -> None:
+    """New one-shots sampled from the model's latent prior."""
+    from pipeline.create import generate_sounds
+    from pipeline.progress import progress_bar
+
+    with progress_bar("generate", enabled=_show_progress(as_json)) as bar:
+        s = generate_sounds(
+            model,
+            out,
+            n=n,
+            temperature=temperature,
+            near=near,
+            seed=seed,
+            render=_render_overrides(iterations, bit_depth, peak_db, loudness),
+            overwrite=overwrite,
+            progress=bar,
+        )
+    _emit(s, as_json, _written_line(s, out))
+
+
+@app.command()
+@_friendly
+def interpolate(
+    model: Annotated[Path, typer.Argument(help="Model file.")],
+    waypoints: Annotated[
+        Optional[list[str]],
+        typer.Argument(help="Two or more clip names (or audio files) to pass through, in order."),
+    ] = None,
+    out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("."),
+    steps: Annotated[int, typer.Option("--steps", min=2, help="Sounds along the path.")] = 8,
+    path: Annotated[str, typer.Option("--path", help="slerp (default) or lerp.")] = "slerp",
+    jobs_file: Annotated[
+        Optional[Path],
+        typer.Option("--jobs-file", help="CSV or TOML file of many interpolations to render."),
+    ] = None,
+    seed: SeedOpt = None,
+    iterations: IterOpt = None,
+    bit_depth: BitDepthOpt = None,
+    peak_db: PeakOpt = None,
+    loudness: LoudOpt = None,
+    overwrite: OverwriteOpt = False,
+    as_json: JsonOpt = False,
+) -> None:
+    """Sounds along a latent path from A to B (and on through C ...)."""
+    from pipeline.create import interpolate_jobs, interpolate_sounds
+    from pipeline.progress import progress_bar
+
+    if path not in ("slerp", "lerp"):
+        raise typer.BadParameter(f"{path!r} must be slerp or lerp", param_hint="--path")
+    if jobs_file is None and len(waypoints or []) < 2:
+        raise typer.BadParameter("give at least two sounds A B, or --jobs-file", param_hint="A B")
+    if jobs_file is not None and waypoints:
+        raise typer.BadParameter("give either sounds A B or --jobs-file, not both")
+    render = _render_overrides(iterations, bit_depth, peak_db, loudness)
+    with progress_bar("interpolate", enabled=_show_progress(as_json)) as bar:
+        common = dict(seed=seed, render=render, overwrite=overwrite, progress=bar)
+        if jobs_file is not None:
+            s = interpolate_jobs(model, jobs_file, out, steps=steps, path=path, **common)
+        else:
+            s = interpolate_sounds(model, waypoints, out, steps=steps, path=path, **common)
+    _emit(s, as_json, _written_line(s, out))
+
+
+@app.command()
+@_friendly
+def vary(
+    model: Annotated[Path, typer.Argument(help="Model file.")],
+    sound: Annotated[str, typer.Argument(help="A clip name from the model, or an audio file.")],
+    out: Annotated[Path, typer.Option("--out", help="Output folder.")],
+    n: Annotated[int, typer.Option("-n", "--count", min=1, help="How many variations.")] = 8,
+    amount: Annotated[
+        float, typer.Option("--amount", min=0.0, help="Spread around the sound; 0 = its reconstruction.")
+    ] = 1.0,
+    seed: SeedOpt = None,
+    iterations: IterOpt = None,
+    bit_depth: BitDepthOpt = None,
+    peak_db: PeakOpt = None,
+    loudness: LoudOpt = None,
+    overwrite: OverwriteOpt = False,
+    as_json: JsonOpt = False,
+) -> None:
+    """Variations around one sound's latent code."""
+    from pipeline.create import vary_sound
+    from pipeline.progress import progress_bar
+
+    with progress_bar("vary", enabled=_show_progress(as_json)) as bar:
+        s = vary_sound(
+            model,
+            sound,
+            out,
+            n=n,
+            amount=amount,
+            seed=seed,
+            render=_render_overrides(iterations, bit_depth, peak_db, loudness),
+            overwrite=overwrite,
+            progress=bar,
+        )
+    _emit(s, as_json, _written_line(s, out))
+
+
+@app.command()
+@_friendly
+def inspect(
+    model: Annotated[Path, typer.Argument(help="Model file.")],
+    out: Annotated[Path, typer.Option("--out", help="Folder for the figures and health.json.")],
+    bank: Annotated[
+        Optional[Path], typer.Option("--bank", help="The bank it was trained on (audio checks).")
+    ] = None,
+    seed: SeedOpt = None,
+    overwrite: OverwriteOpt = False,
+    as_json: JsonOpt = False,
+) -> None:
+    """Is the model safe to sample from? Latent map, reconstructions and a health table."""
+    from pipeline.inspection import format_health_table, inspect_model
+
+    health = inspect_model(model, out, bank=bank, seed=seed, overwrite=overwrite)
+    _emit(health, as_json, format_health_table(health))
+
+
+@app.command()
+@_friendly
+def demo(
+    out: Annotated[Path, typer.Option("--out", help="Folder for everything the demo writes.")] = Path(
+        "shotsmith-demo"
+    ),
+    epochs: Annotated[
+        Optional[int], typer.Option("--epochs", min=1, help="Training epochs (default: the preset's).")
+    ] = None,
+    overwrite: OverwriteOpt = False,
+    as_json: JsonOpt = False,
+) -> None:
+    """The whole job on the bundled demo kit: ingest, train, generate, interpolate, vary, inspect."""
+    from pipeline.demo import format_demo_summary, run_demo
+
+    s = run_demo(out, epochs=epochs, overwrite=overwrite, progress=_show_progress(as_json))
+    _emit(s, as_json, format_demo_summary(s))
+
+
+def main() -> None:
+    """Console-script entry point."""
+    app()
+
+
+if __name__ == "__main__":
+    main()
