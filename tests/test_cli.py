@@ -1,0 +1,82 @@
+"""The command line as a user meets it: start-up cost, help, one-line errors, exit codes."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+from typer.testing import CliRunner
+
+from pipeline.cli import app
+
+runner = CliRunner()
+
+
+def _modules_after(args: list[str]) -> set[str]:
+    code = (
+        "import sys\n"
+        "from typer.testing import CliRunner\n"
+        "from pipeline.cli import app\n"
+        f"CliRunner().invoke(app, {args!r})\n"
+        "print(' '.join(sys.modules))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    return set(out.stdout.split())
+
+
+def test_help_does_not_import_torch():
+    assert "torch" not in _modules_after(["--help"])
+
+
+def test_ingest_does_not_import_torch(tmp_path):
+    (tmp_path / "src").mkdir()
+    mods = _modules_after(["ingest", str(tmp_path / "src"), "--bank", str(tmp_path / "bank")])
+    assert "torch" not in mods
+
+
+def test_python_dash_m_runs_the_same_app():
+    out = subprocess.run(
+        [sys.executable, "-m", "pipeline", "--help"], capture_output=True, text=True
+    )
+    assert out.returncode == 0
+    for command in ("ingest", "resynth", "train", "generate", "interpolate", "vary", "inspect", "demo"):
+        assert command in out.stdout
+
+
+def test_version():
+    result = runner.invoke(app, ["--version"])
+    assert result.exit_code == 0 and result.output.startswith("shotsmith ")
+
+
+def test_missing_source_is_one_line_exit_1(tmp_path):
+    result = runner.invoke(app, ["ingest", str(tmp_path / "nope"), "--bank", str(tmp_path / "b")])
+    assert result.exit_code == 1
+    lines = result.output.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: ") and "nope" in lines[0]
+
+
+def test_unknown_preset_is_one_line_exit_1(tmp_path):
+    result = runner.invoke(
+        app, ["ingest", str(tmp_path), "--bank", str(tmp_path / "b"), "--preset", "marimba"]
+    )
+    assert result.exit_code == 1
+    assert "unknown preset 'marimba'" in result.output
+
+
+def test_usage_error_is_exit_2(tmp_path):
+    result = runner.invoke(app, ["ingest", str(tmp_path)])  # --bank missing
+    assert result.exit_code == 2
+
+
+def test_missing_model_file_is_one_line_exit_1(tmp_path):
+    result = runner.invoke(app, ["generate", str(tmp_path / "none.pt"), "--out", str(tmp_path / "o")])
+    assert result.exit_code == 1
+    assert result.output.startswith("error: ") and "none.pt" in result.output
+    assert "Traceback" not in result.output
+
+
+def test_bad_bit_depth_is_usage_error(tmp_path):
+    result = runner.invoke(
+        app, ["resynth", str(tmp_path), "--out", str(tmp_path / "o"), "--bit-depth", "12"]
+    )
+    assert result.exit_code == 2
