@@ -33,7 +33,15 @@ RESAMPLE_QUALITY = "HQ"  # soxr's default high-quality preset
 def mix_to_mono(y: np.ndarray) -> np.ndarray:
     """Mean of the channels: ``(n,)`` or ``(n, channels)`` to ``(n,)`` float32."""
     y = np.asarray(y, dtype=np.float32)
-    return y if y.ndim == 1 else y.mean(axis=1, dtype=np.float64).astype(np.float32)
+    if y.ndim == 1:
+        return y
+    # A running sum over columns: several times faster than y.mean(axis=1) on (n, 2).
+    out = y[:, 0].copy()
+    for c in range(1, y.shape[1]):
+        out += y[:, c]
+    if y.shape[1] > 1:
+        out *= np.float32(1.0 / y.shape[1])
+    return out
 
 
 def resample(y: np.ndarray, *, orig_sr: int, target_sr: int) -> np.ndarray:

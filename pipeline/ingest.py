@@ -330,6 +330,8 @@ def ingest_folder(
             writer.put(row, unit())
         writer.commit(clips, settings_dict, report)
         writer = None
+        seconds = report["seconds"] = round(time.perf_counter() - t0, 3)  # now with the write
+        write_json_atomic(bank / REPORT_FILE, report)
     finally:
         if writer is not None:
             writer.abort()
