@@ -175,10 +175,17 @@ def _decode_all(
         return
     import multiprocessing as mp
 
-    # fork starts workers with the modules already imported (an import of
-    # numpy/scipy/soundfile costs ~0.5 s per spawned process); ingest never
-    # imports torch or starts threads of its own.
-    ctx = mp.get_context("fork") if sys.platform.startswith("linux") else None
+    # fork starts workers with the modules already imported (importing numpy,
+    # scipy and soundfile costs ~0.5 s per spawned process) and is safe while
+    # the process runs no native thread pools; once a caller has loaded torch
+    # (which has them), use a clean forkserver instead.
+    if sys.platform.startswith("linux") and "torch" not in sys.modules:
+        ctx = mp.get_context("fork")
+    elif "forkserver" in mp.get_all_start_methods():
+        ctx = mp.get_context("forkserver")
+        ctx.set_forkserver_preload(["pipeline.ingest"])
+    else:
+        ctx = None  # spawn, the platform default
     window = 4 * jobs  # results in flight, so memory stays bounded on a huge folder
     try:
         with ProcessPoolExecutor(max_workers=jobs, mp_context=ctx) as pool:

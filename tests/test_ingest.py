@@ -241,6 +241,8 @@ def messy(tmp_path) -> tuple[Path, dict[str, str]]:
     add("formats/vorbis.ogg", hit(22050, ch=2), 22050, format="OGG", subtype="VORBIS")
     add("formats/lossless.flac", hit(44100), 44100, format="FLAC")
     add("formats/UPPER.WAV", hit(44100), 44100)
+    if "MP3" in sf.available_formats():  # libsndfile >= 1.1.0 (its CHANGELOG)
+        add("formats/lossy.mp3", hit(44100), 44100, format="MP3", subtype="MPEG_LAYER_III")
     add("names/Snäre – dünn №1.wav", hit(44100, seed=1), 44100)
     add("names/キック.wav", hit(44100, seed=2), 44100)
     add("names/  spaced   out  .wav", hit(44100, seed=3), 44100)
@@ -264,6 +266,8 @@ def messy(tmp_path) -> tuple[Path, dict[str, str]]:
     good = (src / "kicks" / "kick 01.wav").read_bytes()
     (src / "bad" / "truncated header.wav").write_bytes(good[:30])
     expected["bad/truncated header.wav"] = "not a readable audio file: error in WAV file"
+    (src / "cut short.wav").write_bytes(good[: len(good) // 2])  # header promises more data
+    expected["cut short.wav"] = ACCEPT
     (src / "bad" / "actually text.wav").write_text("these are my notes\n" * 20)
     expected["bad/actually text.wav"] = "not a readable audio file: format not recognised"
 
