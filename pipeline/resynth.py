@@ -14,7 +14,7 @@ from __future__ import annotations
 import posixpath
 import sys
 import time
-from collections import Counter
+from collections import Counter, deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import Executor, ProcessPoolExecutor
 from pathlib import Path
@@ -52,6 +52,20 @@ def _stems(rels: list[str]) -> list[str]:
         posixpath.splitext(r)[0].replace("/", "__") if counts[s] > 1 else s
         for r, s in zip(rels, stems, strict=True)
     ]
+
+
+def _decoded(files: list[FoundFile], audio: AudioSpec, pool: Executor | None, window: int):
+    """``_decode`` of each file in order, at most ``window`` results ahead of the consumer."""
+    if pool is None:
+        yield from (_decode((f.path, audio)) for f in files)
+        return
+    ahead: deque = deque()
+    for f in files:
+        ahead.append(pool.submit(_decode, (f.path, audio)))
+        if len(ahead) >= window:
+            yield ahead.popleft().result()
+    while ahead:
+        yield ahead.popleft().result()
 
 
 def _pool(jobs: int) -> Executor | None:
@@ -125,12 +139,10 @@ def resynth_folder(
     pool = _pool(min(jobs, max(total, 1)))
 
     def batches() -> Iterator[tuple[np.ndarray, list[dict[str, Any]]]]:
-        bs = render.batch_size
-        tasks = [(f.path, audio) for f in files]
-        mapped = pool.map(_decode, tasks, chunksize=4) if pool else map(_decode, tasks)
         nonlocal decoded
+        bs = render.batch_size
         units, items = [], []
-        for k, (f, (unit, info)) in enumerate(zip(files, mapped, strict=True)):
+        for k, (f, (unit, info)) in enumerate(zip(files, _decoded(files, audio, pool, 2 * bs))):
             if unit is None:
                 skipped.append({"path": f.rel, "reason": info})
             else:
