@@ -214,10 +214,6 @@ def _check_outputs(out_dir: Path, overwrite: bool) -> None:
                 raise OutputError(
                     f"{out_dir / name}: already exists (use --overwrite to replace it)"
                 )
-    try:
-        out_dir.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"{out_dir}: cannot create the folder ({exc.strerror or exc})") from None
 
 
 def inspect_model(
@@ -254,6 +250,10 @@ def inspect_model(
     _check_outputs(out_dir, overwrite)
     mf = load_model_file(Path(model_path))
     bank_obj = None if bank is None else _open_matching_bank(Path(bank), mf)
+    try:  # only once the inputs are known to be good
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{out_dir}: cannot create the folder ({exc.strerror or exc})") from None
 
     mu = np.asarray(mf.mu, np.float64)
     logvar = None if mf.logvar is None else np.asarray(mf.logvar, np.float64)
@@ -274,7 +274,9 @@ def inspect_model(
                            title=f"{model_name}: {len(mu)} clips, {mu.shape[1]}-D latent")
     report.plot_reconstructions(U_ref, U_dec, [names[i] for i in rows], mf.audio,
                                 out_dir / RECONSTRUCTIONS_FILE)
+    best = (getattr(mf, "best", None) or {}).get("epoch")
     report.plot_training(list(mf.history or []), out_dir / TRAINING_FILE,
+                         best_epoch=best if isinstance(best, int) and best > 0 else None,
                          title=f"{model_name}: training, {len(mf.history or [])} epochs")
 
     health = {

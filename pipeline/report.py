@@ -251,7 +251,7 @@ HISTORY_KEYS = {
 
 
 def plot_training(history: Sequence[dict[str, Any]], path: Path, *,
-                  title: str | None = None) -> Path:
+                  best_epoch: int | None = None, title: str | None = None) -> Path:
     """Training and validation loss, reconstruction and KL parts per epoch.
 
     Parameters
@@ -260,8 +260,9 @@ def plot_training(history: Sequence[dict[str, Any]], path: Path, *,
         ``train_recon``, ``val_recon``, ``train_kl``, ``val_kl``; ``beta`` or
         ``kl_weight`` when present is drawn on the KL panel)
     path : Path of the PNG (``TRAINING_SIZE`` pixels)
+    best_epoch : int, optional. The epoch whose weights were kept (a vertical line)
     """
-    from matplotlib.ticker import MaxNLocator
+    from matplotlib.ticker import FuncFormatter, MaxNLocator
 
     history = list(history or [])
     fig = _figure(TRAINING_SIZE)
@@ -270,7 +271,7 @@ def plot_training(history: Sequence[dict[str, Any]], path: Path, *,
     epochs = np.where(np.isnan(epochs), np.arange(1, len(history) + 1), epochs)
     axes = [fig.add_axes((0.05 + 0.33 * i, 0.13, 0.25, 0.72)) for i in range(3)]
     for ax, (name, (tkeys, vkeys)) in zip(axes, HISTORY_KEYS.items(), strict=True):
-        drawn = False
+        drawn, values = False, []
         for keys, label, style in ((tkeys, "training", "-"), (vkeys, "validation", "--")):
             y = _series(history, *keys)
             ok = np.isfinite(y)
@@ -278,20 +279,33 @@ def plot_training(history: Sequence[dict[str, Any]], path: Path, *,
                 ax.plot(epochs[ok], y[ok], style, marker="." if ok.sum() < 30 else None,
                         label=label)
                 drawn = True
+                values.append(y[ok])
+        v = np.concatenate(values) if values else np.zeros(0)
+        if v.size and v.min() > 0 and v.max() > 3 * v.min():  # early epochs would flatten the rest
+            ax.set_yscale("log")
+            plain = FuncFormatter(lambda v, _: f"{v:g}")
+            ax.yaxis.set_major_formatter(plain)
+            ax.yaxis.set_minor_formatter(plain)
+        if best_epoch is not None and drawn:
+            ax.axvline(best_epoch, color="0.3", lw=0.8, alpha=0.6,
+                       label="kept epoch" if name == "loss" else None)
+        handles, labels = ax.get_legend_handles_labels()
         if name == "KL":
             w = _series(history, "kl_weight", "beta")
             if np.isfinite(w).any():
                 tw = ax.twinx()
-                tw.plot(epochs, w, ":", color="0.4", label="KL weight")
+                (line,) = tw.plot(epochs, w, ":", color="0.4", label="KL weight")
                 tw.set_ylabel("KL weight", fontsize=8, color="0.4")
+                tw.set_ylim(0, 1.3 * max(float(np.nanmax(w)), 1e-3))  # room for the legend
                 tw.tick_params(labelsize=7, colors="0.4")
+                handles, labels = handles + [line], labels + ["KL weight"]
         ax.set_title(name, fontsize=10)
         ax.set_xlabel("epoch")
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         ax.grid(True, alpha=0.25)
-        ax.tick_params(labelsize=8)
+        ax.tick_params(which="both", labelsize=8)
         if drawn:
-            ax.legend(fontsize=8, frameon=False)
+            ax.legend(handles, labels, fontsize=8, frameon=False, loc="upper right")
         else:
             ax.text(0.5, 0.5, "not recorded", ha="center", va="center",
                     transform=ax.transAxes, color="0.4")

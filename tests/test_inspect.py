@@ -19,6 +19,7 @@ from pipeline.errors import BankError, OutputError
 from pipeline.inspection import (
     HEALTH_KEYS,
     OUTPUT_FILES,
+    _split_indices,
     figure_clips,
     format_health_table,
     inspect_model,
@@ -260,6 +261,14 @@ def test_bank_with_other_audio_settings_is_refused(trained, tmp_path):
     bank = _write_bank(tmp_path / "other", other, per_category=2)
     with pytest.raises(BankError, match="other audio settings"):
         inspect_model(model, tmp_path / "out", bank=bank)
+    assert not (tmp_path / "out").exists()  # nothing is created for a run that cannot go on
+
+
+def test_a_model_without_validation_split_uses_every_clip():
+    idx, source = _split_indices({"train": np.arange(5), "val": np.zeros(0, np.int64)}, 5)
+    assert idx.tolist() == [0, 1, 2, 3, 4] and source.startswith("all clips")
+    idx, source = _split_indices({"train": np.arange(3), "val": np.array([4, 3])}, 5)
+    assert idx.tolist() == [3, 4] and source == "validation split"
 
 
 def test_cli_prints_the_table_and_json(trained, tmp_path):
