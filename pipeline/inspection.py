@@ -82,12 +82,6 @@ def figure_clips(indices: np.ndarray, categories: Sequence[str | None], *,
     return chosen
 
 
-def _decode(mf, z: np.ndarray) -> np.ndarray:
-    parts = [np.asarray(mf.decode(z[i : i + DECODE_BATCH]), dtype=np.float32)
-             for i in range(0, len(z), DECODE_BATCH)]
-    return np.concatenate(parts) if parts else np.zeros((0,), np.float32)
-
-
 def _spectral_errors(S_ref: np.ndarray, S_est: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     from pipeline.spectra import log_spectral_distance, spectral_convergence_db
 
@@ -143,16 +137,41 @@ def _open_matching_bank(bank_path: Path, mf) -> Any:
     return bank
 
 
+def _phase_section(S_ref: np.ndarray, S_dec: np.ndarray, sc_dec: np.ndarray, audio, render,
+                   seed: int) -> dict[str, Any]:
+    """Decoded magnitudes -> fast Griffin-Lim -> audio, measured against the originals."""
+    from pipeline.phase import griffin_lim
+    from pipeline.spectra import magnitude
+
+    gl = dict(n_fft=audio.n_fft, hop_length=audio.hop_length, length=audio.n_samples,
+              n_iter=render.iterations, momentum=render.momentum, init=render.phase_init,
+              seed=seed)
+    mag = dict(n_fft=audio.n_fft, hop_length=audio.hop_length)
+    A_dec = magnitude(griffin_lim(S_dec, **gl), **mag).astype(np.float32)
+    A_ref = magnitude(griffin_lim(S_ref, **gl), **mag).astype(np.float32)
+    sc_p, lsd_p = _spectral_errors(S_ref, A_dec)  # the audio against the originals
+    # Griffin-Lim on the originals (the resynthesis ceiling), and how consistent the
+    # decoded spectra are (how closely any audio can have them) for comparison
+    sc_c, _ = _spectral_errors(S_ref, A_ref)
+    sc_k, _ = _spectral_errors(S_dec, A_dec)
+    added, ceiling = float(np.median(sc_p - sc_dec)), float(np.median(sc_c))
+    return {"measured": True, **_summary(sc_p, lsd_p), "added_db": added,
+            "ceiling_spectral_convergence_db": ceiling, "consistency_db": float(np.median(sc_k)),
+            "iterations": int(render.iterations), "momentum": float(render.momentum),
+            **_phase_verdict(added, ceiling, render.iterations)}
+
+
 def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[int],
                             rng: np.random.Generator, seed: int):
     """The ``reconstruction`` section and the figure's originals / reconstructions."""
-    from pipeline.spectra import magnitude, unit_to_magnitude
+    from pipeline.modelfile import names_digest
+    from pipeline.spectra import unit_to_magnitude
 
-    audio, render = mf.audio, mf.settings.render
+    audio = mf.audio
     out: dict[str, Any] = {"clips": int(len(idx)), "source": source}
     if bank is None:
         why = "no bank given: pass --bank with the bank the model was trained on"
-        decoded = _decode(mf, np.asarray(mf.mu, np.float32)[rows])
+        decoded = np.asarray(mf.decode(np.asarray(mf.mu, np.float32)[rows]), np.float32)
         out.update(decoded=_not_measured(why), phase=_not_measured(why),
                    rating="not measured", verdict=f"not measured: {why}")
         return out, None, decoded
@@ -164,36 +183,28 @@ def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[i
         raise BankError(f"{bank.path}: none of the model's held-out clips are in this bank "
                         "(is it the bank the model was trained on?)")
     out["missing_from_bank"] = int(len(idx) - len(present))
+    digest = (getattr(mf, "bank", None) or {}).get("names_sha256")
+    out["same_bank"] = None if digest is None else digest == names_digest(bank.names)
     mu = np.asarray(mf.mu, np.float32)
-    U_ref = np.stack([np.asarray(bank.spectra[row_of[names[i]]], np.float32) for i in present])
-    U_dec = _decode(mf, mu[present])
-    S_ref, S_dec = unit_to_magnitude(U_ref, audio), unit_to_magnitude(U_dec, audio)
-    sc, lsd = _spectral_errors(S_ref, S_dec)
-    dec = {"measured": True, **_summary(sc, lsd), **_decoded_verdict(float(np.median(sc)))}
-
-    from pipeline.phase import griffin_lim
-
     take = np.sort(rng.choice(len(present), size=min(PHASE_MAX_CLIPS, len(present)),
                               replace=False))
-    gl = dict(n_fft=audio.n_fft, hop_length=audio.hop_length, length=audio.n_samples,
-              n_iter=render.iterations, momentum=render.momentum, init=render.phase_init,
-              seed=seed)
-    y_dec = griffin_lim(S_dec[take], **gl)
-    y_ref = griffin_lim(S_ref[take], **gl)
-    mag = dict(n_fft=audio.n_fft, hop_length=audio.hop_length)
-    A_dec = magnitude(y_dec, **mag).astype(np.float32)
-    A_ref = magnitude(y_ref, **mag).astype(np.float32)
-    sc_p, lsd_p = _spectral_errors(S_ref[take], A_dec)  # the audio against the originals
-    # Griffin-Lim on the originals (the resynthesis ceiling), and how consistent the
-    # decoded spectra are (how closely any audio can have them) for comparison
-    sc_c, _ = _spectral_errors(S_ref[take], A_ref)
-    sc_k, _ = _spectral_errors(S_dec[take], A_dec)
-    added = float(np.median(sc_p - sc[take]))
-    ceiling = float(np.median(sc_c))
-    ph = {"measured": True, **_summary(sc_p, lsd_p), "added_db": added,
-          "ceiling_spectral_convergence_db": ceiling, "consistency_db": float(np.median(sc_k)),
-          "iterations": int(render.iterations), "momentum": float(render.momentum),
-          **_phase_verdict(added, ceiling, render.iterations)}
+    wanted = set(rows)
+    keep = set(take.tolist()) | {k for k, i in enumerate(present) if i in wanted}
+    sc, lsd, kept = np.zeros(len(present)), np.zeros(len(present)), {}
+    for a in range(0, len(present), DECODE_BATCH):  # in chunks: a large library stays small
+        part = present[a : a + DECODE_BATCH]
+        U_ref = np.stack([np.asarray(bank.spectra[row_of[names[i]]], np.float32) for i in part])
+        U_dec = np.asarray(mf.decode(mu[part]), np.float32)
+        S_ref, S_dec = unit_to_magnitude(U_ref, audio), unit_to_magnitude(U_dec, audio)
+        sc[a : a + len(part)], lsd[a : a + len(part)] = _spectral_errors(S_ref, S_dec)
+        for j in range(len(part)):
+            if a + j in keep:
+                kept[a + j] = (U_ref[j], U_dec[j], S_ref[j], S_dec[j])
+    dec = {"measured": True, **_summary(sc, lsd), **_decoded_verdict(float(np.median(sc)))}
+    S_ref = np.stack([kept[k][2] for k in take])
+    S_dec = np.stack([kept[k][3] for k in take])
+
+    ph = _phase_section(S_ref, S_dec, sc[take], audio, mf.settings.render, seed)
     rating = _worst(dec["rating"], ph["rating"])
     text = dec["verdict"].split(": ", 1)[1]
     if ph["rating"] != "good":
@@ -202,7 +213,9 @@ def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[i
 
     pos = {int(i): k for k, i in enumerate(present)}
     shown = [pos[i] for i in rows if i in pos]
-    return out, U_ref[shown], U_dec[shown]
+    if not shown:
+        return out, None, np.zeros((0, audio.n_bins, audio.n_frames), np.float32)
+    return (out, np.stack([kept[k][0] for k in shown]), np.stack([kept[k][1] for k in shown]))
 
 
 def _check_outputs(out_dir: Path, overwrite: bool) -> None:

@@ -192,6 +192,7 @@ def test_reconstruction_is_measured_with_the_bank(inspected):
     _, health = inspected
     rec = health["reconstruction"]
     assert rec["source"] == "validation split"
+    assert rec["same_bank"] is True and rec["missing_from_bank"] == 0
     dec, ph = rec["decoded"], rec["phase"]
     assert dec["measured"] and ph["measured"]
     for part in (dec, ph):
