@@ -73,6 +73,30 @@ def test_zero_iterations_zero_phase_is_the_istft_of_the_magnitudes(rng):
     np.testing.assert_allclose(y, ref, atol=1e-6)
 
 
+@pytest.mark.parametrize("momentum", [0.0, 0.5, 0.99])
+def test_matches_a_direct_transcription_of_the_fast_griffin_lim_update(rng, momentum):
+    # Perraudin et al. 2013 as in ltfat's gla.m (references.md section 4), written out with
+    # the reference transforms: c = STFT(ISTFT(c)); t_n = S e^{i angle c};
+    # c = t_n + a (t_n - t_{n-1}), t_0 = c_0; output ISTFT(t_N)
+    S = _mag(_hits(rng, 2))
+    n_iter, seed = 6, 2
+    stft = lambda y: spectra.stft(y, n_fft=N_FFT, hop_length=HOP)  # noqa: E731
+    istft = lambda X: spectra.istft(X, n_fft=N_FFT, hop_length=HOP, length=N)  # noqa: E731
+    c = S * np.exp(1j * phase.random_phase(S.shape[1], S.shape[2], seed=seed, count=2))
+    t_prev, sc_ref = c, []
+    for _ in range(n_iter):
+        rebuilt = stft(istft(c))
+        sc_ref.append(spectra.spectral_convergence(S, np.abs(rebuilt)))
+        t = S * np.exp(1j * np.angle(rebuilt))
+        c, t_prev = t + momentum * (t - t_prev), t
+    y_ref = istft(t_prev)
+    y, sc = phase.griffin_lim_trace(S.astype(np.float32), n_fft=N_FFT, hop_length=HOP,
+                                    length=N, n_iter=n_iter, momentum=momentum, seed=seed)
+    assert np.max(np.abs(y - y_ref)) < 1e-4 * np.max(np.abs(y_ref))
+    np.testing.assert_allclose(sc[:, :n_iter], np.stack(sc_ref, axis=1), rtol=1e-4)
+    np.testing.assert_allclose(sc[:, -1], spectra.spectral_convergence(S, _mag(y_ref)), rtol=1e-4)
+
+
 def test_plain_griffin_lim_never_increases_the_spectral_distance():
     # Griffin & Lim 1984: the distance to the target magnitudes is non-increasing for
     # plain GLA (momentum 0). references.md section 4 (the paper's property is [M]).
