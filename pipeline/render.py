@@ -10,6 +10,7 @@ audio calls with decoded spectra and per-item metadata.
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 import os
 import re
@@ -259,8 +260,6 @@ class OutputFolder:
         self._earlier = self._read_earlier()
 
     def _read_earlier(self) -> list[dict[str, Any]]:
-        import json
-
         try:
             old = json.loads((self.path / MANIFEST_FILE).read_text(encoding="utf-8"))
             items = [it for it in old.get("items", []) if isinstance(it, dict) and "file" in it]
