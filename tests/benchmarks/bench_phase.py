@@ -10,7 +10,8 @@ Prints wall times, SC and the ratios against references measured in this run:
 * FFT floor: only the 2 x 32 batched ``scipy.fft`` transforms that any such loop needs.
 
 Targets on 2 cores, at equal or better SC: >= 4x the librosa loop, >= 2x librosa x2.
-The machine may be shared: best of ``--repeat`` runs is reported; rerun when noisy.
+The machine may be shared: the best of ``--repeat`` runs of each method is reported;
+rerun when the load average printed at the start is well above 0.
 
     python tests/benchmarks/bench_phase.py [--clips 64] [--repeat 3]
 """
@@ -119,7 +120,7 @@ def _sc(S: np.ndarray, y: np.ndarray, n_fft: int, hop: int) -> np.ndarray:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--clips", type=int, default=64)
-    ap.add_argument("--repeat", type=int, default=3, help="best of this many runs of ours")
+    ap.add_argument("--repeat", type=int, default=2, help="best of this many runs of each method")
     args = ap.parse_args()
     print(f"python {sys.version.split()[0]}, numpy {np.__version__}, scipy {scipy.__version__}, "
           f"librosa {librosa.__version__}; {os.cpu_count()} cores, "
@@ -137,17 +138,18 @@ def main() -> None:
         phase.griffin_lim(S[:2], **kw)  # warm-up
         t_ours, y_ours = _best(lambda: phase.griffin_lim(S, **kw), args.repeat)  # noqa: B023
         _librosa_many([0])  # warm-up (librosa compiles its window sum-square on first use)
-        t_loop, y_loop = _best(lambda: _librosa_many(list(range(len(S)))), 1)  # noqa: B023
+        t_loop, y_loop = _best(lambda: _librosa_many(list(range(len(S)))), args.repeat)  # noqa: B023
         with ProcessPoolExecutor(2, mp_context=ctx) as pool:
             list(pool.map(_warm, range(2)))
             halves = [list(range(0, len(S), 2)), list(range(1, len(S), 2))]
-            t_two, parts = _best(lambda: list(pool.map(_librosa_many, halves)), 1)  # noqa: B023
+            t_two, parts = _best(lambda: list(pool.map(_librosa_many, halves)), args.repeat)  # noqa: B023
         y_two = np.empty_like(y_loop)
         y_two[halves[0]], y_two[halves[1]] = parts
         t_fft = min(fft_floor(len(S), n_fft, S.shape[-1]) for _ in range(args.repeat))
         sc = {k: _sc(S, v, n_fft, hop) for k, v in
               (("ours", y_ours), ("loop", y_loop), ("two", y_two))}
-        print(f"\n{sr} Hz, n_fft {n_fft}, hop {hop}: S {S.shape}")
+        print(f"\n{sr} Hz, n_fft {n_fft}, hop {hop}: S {S.shape}; "
+              f"load average {os.getloadavg()[0]:.2f} after the runs")
         for label, t, key in (("ours (batched fast GLA)", t_ours, "ours"),
                               ("librosa loop", t_loop, "loop"),
                               ("librosa x2 processes", t_two, "two")):
