@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import os
+import stat
 from pathlib import Path
 from typing import Any
 
@@ -154,7 +155,12 @@ def decode_file(path: str | Path, spec: AudioSpec) -> tuple[np.ndarray, dict[str
         With the bare reason (no path), e.g. ``"silent: peak -inf dBFS"``.
     """
     try:
-        size = os.stat(path).st_size
+        st = os.stat(path)
+        if stat.S_ISDIR(st.st_mode):
+            raise AudioError("is a folder, not an audio file")
+        if not stat.S_ISREG(st.st_mode):  # opening a FIFO would block until a writer comes
+            raise AudioError("not a regular file (device, pipe or socket)")
+        size = st.st_size
         with open(path, "rb"):
             pass
     except PermissionError:
