@@ -397,7 +397,7 @@ def demo(
     as_json: JsonOpt = False,
 ) -> None:
     """The whole job on the bundled demo kit: ingest, train, generate, interpolate, vary, inspect."""
-    from pipeline.demo import format_demo_summary, run_demo
+    from pipeline.demo_run import format_demo_summary, run_demo
 
     s = run_demo(out, epochs=epochs, overwrite=overwrite, progress=_show_progress(as_json))
     _emit(s, as_json, format_demo_summary(s))

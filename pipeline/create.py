@@ -1,0 +1,352 @@
+"""New one-shots from a model file: generate, interpolate, vary.
+
+Each command turns its request into a batch of latent codes (pure functions in
+:mod:`pipeline.latent`), then the shared path decodes them in batches, runs the
+batched fast Griffin-Lim, finishes and writes WAVs with a manifest
+(:func:`pipeline.render.render_spectra`). Every item records its code, seed,
+sources and nearest training clip, so near-copies of the library stand out.
+"""
+
+from __future__ import annotations
+
+import csv
+import secrets
+import sys
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pipeline import latent
+from pipeline.errors import ParameterError, ShotsmithError
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+PATH_KINDS = ("slerp", "lerp")
+
+
+@dataclass(frozen=True)
+class Waypoint:
+    """A resolved sound: its latent posterior and a label for file names."""
+
+    label: str
+    mu: np.ndarray
+    logvar: np.ndarray
+    source: dict[str, Any]
+
+
+def _load(model_path: Path):
+    from pipeline.modelfile import load_model_file  # torch: only for generating commands
+
+    return load_model_file(model_path)
+
+
+def _seed(seed: int | None) -> int:
+    return int(secrets.randbits(31)) if seed is None else int(seed)
+
+
+def resolve_sound(mf, text: str) -> Waypoint:
+    """A clip from the model (exact name, relative path or unique prefix), or an audio file."""
+    names = list(mf.clip_names)
+    paths = list(getattr(mf, "clip_paths", None) or [])
+    hits = [i for i, n in enumerate(names) if n == text]
+    if not hits and paths:
+        stripped = text.replace("\\", "/")
+        hits = [i for i, p in enumerate(paths) if p == stripped or p.rsplit(".", 1)[0] == stripped]
+    if not hits:
+        hits = [i for i, n in enumerate(names) if n.startswith(text)]
+    if len(hits) == 1:
+        i = hits[0]
+        return Waypoint(names[i], mf.mu[i], mf.logvar[i], {"clip": names[i]})
+    if len(hits) > 1:
+        shown = ", ".join(names[i] for i in hits[:12]) + (" ..." if len(hits) > 12 else "")
+        raise ParameterError(f"{text!r} matches {len(hits)} clips: {shown}; give more of the name")
+    path = Path(text)
+    if path.is_file():
+        from pipeline.ingest import load_clip
+        from pipeline.spectra import clip_to_unit
+
+        y = load_clip(path, mf.audio)
+        mu, logvar = mf.encode(clip_to_unit(y, mf.audio)[None])
+        return Waypoint(path.stem, mu[0], logvar[0], {"file": str(path)})
+    raise ParameterError(
+        f"{text!r} is neither a clip in the model nor an audio file "
+        f"(clips look like {', '.join(names[:3])} ...)"
+    )
+
+
+def _nearest(mf, Z: np.ndarray) -> list[dict[str, Any]]:
+    idx, dist = latent.nearest_codes(Z, mf.mu)
+    spacing = max(latent.typical_spacing(mf.mu), 1e-12)
+    return [
+        {"name": mf.clip_names[i], "distance": float(d), "distance_ratio": float(d / spacing)}
+        for i, d in zip(idx, dist)
+    ]
+
+
+def _render(
+    mf,
+    Z: np.ndarray,
+    items: list[dict[str, Any]],
+    out: Path,
+    *,
+    seed: int,
+    render: dict[str, Any] | None,
+    overwrite: bool,
+    progress: Callable[..., None] | None,
+    summary: dict[str, Any],
+) -> dict[str, Any]:
+    """Decode codes in batches and hand them to the shared renderer."""
+    from pipeline.config import spec_from_dict
+    from pipeline.render import render_spectra
+
+    base = mf.settings.render.__dict__ | {k: v for k, v in (render or {}).items() if v is not None}
+    render_spec = spec_from_dict(type(mf.settings.render), base, "render")
+    for item, z, near in zip(items, Z, _nearest(mf, Z)):
+        item["z"] = [round(float(v), 6) for v in z]
+        item["nearest"] = near
+    bs = render_spec.batch_size
+
+    def batches() -> Iterator[tuple[np.ndarray, list[dict[str, Any]]]]:
+        for start in range(0, len(items), bs):
+            yield mf.decode(Z[start : start + bs]), items[start : start + bs]
+
+    written = render_spectra(
+        batches(),
+        out,
+        mf.audio,
+        render_spec,
+        overwrite=overwrite,
+        seed=seed,
+        progress=progress,
+        total=len(items),
+        manifest_extra={
+            "model": {"path": str(mf.path), "sha256": mf.sha256},
+            "settings": mf.settings.to_dict() | {"render": render_spec.__dict__},
+            "request": summary,
+        },
+    )
+    ratios = [it["nearest"]["distance_ratio"] for it in written]
+    return summary | {
+        "written": len(written),
+        "out": str(out),
+        "manifest": str(Path(out) / "manifest.json"),
+        "min_distance_ratio": min(ratios) if ratios else None,
+        "files": [it["file"] for it in written],
+    }
+
+
+def generate_sounds(
+    model: Path,
+    out: Path,
+    *,
+    n: int = 16,
+    temperature: float = 1.0,
+    near: str | None = None,
+    seed: int | None = None,
+    render: dict[str, Any] | None = None,
+    overwrite: bool = False,
+    progress: Callable[..., None] | None = None,
+) -> dict[str, Any]:
+    """``n`` new one-shots from the prior N(0, T²I), or near one category of the library."""
+    if n < 1:
+        raise ParameterError(f"-n={n} must be at least 1")
+    mf = _load(model)
+    seed = _seed(seed)
+    rng = np.random.default_rng(seed)
+    if near is None:
+        Z = latent.sample_prior(n, mf.mu.shape[1], temperature=temperature, rng=rng)
+        sources: list[str] = []
+    else:
+        mean, cov = latent.category_gaussian(mf.mu, list(mf.clip_categories), near)
+        Z = latent.sample_near(mean, cov, n, temperature=temperature, rng=rng)
+        sources = [f"category:{near}"]
+    items = [
+        {"stem": f"generate-{i:04d}", "kind": "generate", "seed": seed + i, "sources": sources}
+        for i in range(n)
+    ]
+    request = {"command": "generate", "n": n, "temperature": temperature, "near": near,
+               "seed": seed}
+    return _render(
+        mf, Z, items, out, seed=seed, render=render, overwrite=overwrite, progress=progress,
+        summary=request,
+    )
+
+
+def _path_items(
+    points: Sequence[Waypoint], steps: int, kind: str, seed: int, label: str | None = None
+) -> tuple[np.ndarray, list[dict[str, Any]]]:
+    if kind not in PATH_KINDS:
+        raise ParameterError(f"--path={kind!r} must be slerp or lerp")
+    if len(points) < 2:
+        raise ParameterError("an interpolation needs at least two sounds")
+    if steps < 2:
+        raise ParameterError(f"--steps={steps} must be at least 2")
+    Z = latent.latent_path(np.stack([p.mu for p in points]), steps, kind=kind)
+    stem = label or "interpolate-" + "-to-".join(p.label for p in points)
+    sources = [p.source.get("clip") or p.source.get("file") for p in points]
+    items = [
+        {
+            "stem": f"{stem}-{i:02d}",
+            "kind": "interpolate",
+            "seed": seed + i,
+            "sources": sources,
+            "path": kind,
+            "step": i,
+        }
+        for i in range(steps)
+    ]
+    return Z, items
+
+
+def interpolate_sounds(
+    model: Path,
+    waypoints: Sequence[str],
+    out: Path,
+    *,
+    steps: int = 8,
+    path: str = "slerp",
+    seed: int | None = None,
+    render: dict[str, Any] | None = None,
+    overwrite: bool = False,
+    progress: Callable[..., None] | None = None,
+) -> dict[str, Any]:
+    """``steps`` sounds along one continuous path through the waypoints (slerp, White 2016)."""
+    mf = _load(model)
+    seed = _seed(seed)
+    points = [resolve_sound(mf, w) for w in waypoints]
+    Z, items = _path_items(points, steps, path, seed)
+    request = {"command": "interpolate", "waypoints": list(waypoints), "steps": steps,
+               "path": path, "seed": seed}
+    return _render(
+        mf, Z, items, out, seed=seed, render=render, overwrite=overwrite, progress=progress,
+        summary=request,
+    )
+
+
+def read_jobs_file(path: Path) -> list[dict[str, Any]]:
+    """Interpolation jobs from CSV or TOML (see the README for both layouts).
+
+    CSV: a header with ``start`` and ``end``; optional ``via`` (waypoints split by ``|``),
+    ``steps``, ``path`` and ``label``. TOML: ``[[job]]`` tables with ``sounds = [...]``
+    and the same optional keys.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ShotsmithError(f"{path}: cannot read jobs file ({exc})") from None
+    jobs: list[dict[str, Any]] = []
+    if path.suffix.lower() == ".toml":
+        try:
+            data = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise ShotsmithError(f"{path}: not valid TOML ({exc})") from None
+        for k, job in enumerate(data.get("job", []), 1):
+            if not isinstance(job, dict) or not isinstance(job.get("sounds"), list):
+                raise ShotsmithError(f"{path}: job {k} needs sounds = [\"A\", \"B\", ...]")
+            unknown = set(job) - {"sounds", "steps", "path", "label"}
+            if unknown:
+                raise ShotsmithError(f"{path}: job {k}: unknown key {sorted(unknown)[0]!r}")
+            jobs.append({"where": f"{path}: job {k}", **job})
+    elif path.suffix.lower() == ".csv":
+        rows = csv.DictReader(text.splitlines())
+        if not rows.fieldnames or not {"start", "end"} <= set(rows.fieldnames):
+            raise ShotsmithError(f"{path}: the CSV header needs 'start' and 'end' columns")
+        for line, row in enumerate(rows, 2):
+            via = [v.strip() for v in (row.get("via") or "").split("|") if v.strip()]
+            job: dict[str, Any] = {"where": f"{path}: line {line}"}
+            job["sounds"] = [row["start"].strip(), *via, (row["end"] or "").strip()]
+            for key in ("steps", "path", "label"):
+                if (row.get(key) or "").strip():
+                    job[key] = row[key].strip()
+            jobs.append(job)
+    else:
+        raise ShotsmithError(f"{path}: jobs file must end in .csv or .toml")
+    for job in jobs:
+        if "steps" in job:
+            try:
+                job["steps"] = int(job["steps"])
+            except (TypeError, ValueError):
+                where, steps = job["where"], job["steps"]
+                raise ShotsmithError(f"{where}: steps {steps!r} is not a number") from None
+        if any(not isinstance(s, str) or not s for s in job["sounds"]) or len(job["sounds"]) < 2:
+            raise ShotsmithError(f"{job['where']}: needs at least two sound names")
+    if not jobs:
+        raise ShotsmithError(f"{path}: no jobs found")
+    return jobs
+
+
+def interpolate_jobs(
+    model: Path,
+    jobs_file: Path,
+    out: Path,
+    *,
+    steps: int = 8,
+    path: str = "slerp",
+    seed: int | None = None,
+    render: dict[str, Any] | None = None,
+    overwrite: bool = False,
+    progress: Callable[..., None] | None = None,
+) -> dict[str, Any]:
+    """Many interpolations from one jobs file, rendered into one folder with one manifest."""
+    from pipeline.render import safe_name
+
+    jobs = read_jobs_file(jobs_file)
+    mf = _load(model)
+    seed = _seed(seed)
+    codes, items = [], []
+    for job in jobs:
+        try:
+            points = [resolve_sound(mf, s) for s in job["sounds"]]
+            label = safe_name(job["label"]) if job.get("label") else None
+            Z, its = _path_items(
+                points, job.get("steps", steps), job.get("path", path), seed + len(items), label
+            )
+        except ShotsmithError as exc:
+            raise ShotsmithError(f"{job['where']}: {exc}") from None
+        codes.append(Z)
+        items.extend(its)
+    request = {"command": "interpolate", "jobs_file": str(jobs_file), "jobs": len(jobs),
+               "seed": seed}
+    return _render(
+        mf, np.concatenate(codes), items, out, seed=seed, render=render, overwrite=overwrite,
+        progress=progress, summary=request,
+    )
+
+
+def vary_sound(
+    model: Path,
+    sound: str,
+    out: Path,
+    *,
+    n: int = 8,
+    amount: float = 1.0,
+    seed: int | None = None,
+    render: dict[str, Any] | None = None,
+    overwrite: bool = False,
+    progress: Callable[..., None] | None = None,
+) -> dict[str, Any]:
+    """``n`` variations around one sound's posterior; ``amount=0`` gives its reconstruction."""
+    if n < 1:
+        raise ParameterError(f"-n={n} must be at least 1")
+    mf = _load(model)
+    seed = _seed(seed)
+    point = resolve_sound(mf, sound)
+    Z = latent.variations(point.mu, point.logvar, n, amount=amount, rng=np.random.default_rng(seed))
+    src = [point.source.get("clip") or point.source.get("file")]
+    items = [
+        {"stem": f"vary-{point.label}-{i:02d}", "kind": "vary", "seed": seed + i, "sources": src,
+         "amount": amount}
+        for i in range(n)
+    ]
+    request = {"command": "vary", "sound": sound, "n": n, "amount": amount, "seed": seed}
+    return _render(
+        mf, Z, items, out, seed=seed, render=render, overwrite=overwrite, progress=progress,
+        summary=request,
+    )
