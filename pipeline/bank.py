@@ -59,7 +59,9 @@ def write_json_atomic(path: Path, data: Any) -> None:
     """Write JSON to ``path`` via a temporary file and a rename."""
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     try:
-        with open(tmp, "w", encoding="utf-8") as fh:
+        # A path that is not UTF-8 (POSIX bytes, held as lone surrogates) is written as a
+        # \udcXX JSON escape, which json.loads turns back into the same path.
+        with open(tmp, "w", encoding="utf-8", errors="backslashreplace") as fh:
             json.dump(data, fh, indent=2, ensure_ascii=False, allow_nan=False)
             fh.write("\n")
             fh.flush()
