@@ -55,8 +55,8 @@ class Bank:
         return sorted({c["category"] for c in self.clips if c.get("category")})
 
 
-def write_json_atomic(path: Path, data: Any) -> None:
-    """Write JSON to ``path`` via a temporary file and a rename."""
+def _json_to_temp(path: Path, data: Any) -> Path:
+    """Write JSON next to ``path`` under a temporary name, fsynced; the caller renames it."""
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     try:
         # A path that is not UTF-8 (POSIX bytes, held as lone surrogates) is written as a
@@ -66,6 +66,16 @@ def write_json_atomic(path: Path, data: Any) -> None:
             fh.write("\n")
             fh.flush()
             os.fsync(fh.fileno())
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return tmp
+
+
+def write_json_atomic(path: Path, data: Any) -> None:
+    """Write JSON to ``path`` via a temporary file and a rename."""
+    tmp = _json_to_temp(path, data)
+    try:
         os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)
@@ -108,7 +118,6 @@ class BankWriter:
             raise ValueError("one index entry per spectra row is required")
         self._rows.flush()
         del self._rows
-        os.replace(self._tmp, self.path / SPECTRA_FILE)
         index = {
             "format": BANK_FORMAT,
             "tool": "shotsmith",
@@ -117,7 +126,14 @@ class BankWriter:
             "shape": [len(clips), self.audio.n_bins, self.audio.n_frames],
             "clips": clips,
         }
-        write_json_atomic(self.path / INDEX_FILE, index)
+        # Everything that can fail for lack of space is written before the first rename, so
+        # a full disk leaves the previous spectra and index together.
+        index_tmp = _json_to_temp(self.path / INDEX_FILE, index)
+        try:
+            os.replace(self._tmp, self.path / SPECTRA_FILE)
+            os.replace(index_tmp, self.path / INDEX_FILE)
+        finally:
+            index_tmp.unlink(missing_ok=True)
         write_json_atomic(self.path / REPORT_FILE, report)
 
     def abort(self) -> None:
