@@ -93,7 +93,7 @@ class ModelSpec:
     """Network size. Input shape comes from the AudioSpec."""
 
     latent_dim: int = 16
-    width: int = 256  # channels of the first time-convolution
+    width: int = 128  # channels of every time-convolution (the bins are the input channels)
     depth: int = 3  # stride-2 time-convolutions in the encoder (mirrored in the decoder)
     kernel_size: int = 5
 
@@ -121,6 +121,7 @@ class TrainSpec:
     beta: float = 1.0  # weight of the KL term
     kl_warmup_epochs: int = 20  # KL weight rises linearly from 0 to beta (Bowman et al. 2016)
     free_bits: float = 0.0  # nats per latent dimension (Kingma et al. 2016); 0 = off
+    loud_weight: float = 3.0  # reconstruction weight 1 + loud_weight * level: loud parts count more
     val_fraction: float = 0.15
     patience: int = 30  # epochs without validation improvement before stopping
     seed: int = 0
@@ -134,6 +135,8 @@ class TrainSpec:
             _fail("train.learning_rate", f"{self.learning_rate} must be between 0 and 1")
         if self.weight_decay < 0 or self.beta < 0 or self.free_bits < 0:
             _fail("train.beta", "weight_decay, beta and free_bits must not be negative")
+        if not 0 <= self.loud_weight <= 100:
+            _fail("train.loud_weight", f"{self.loud_weight} must be between 0 and 100")
         if self.lr_warmup_epochs < 0 or self.kl_warmup_epochs < 0 or self.patience < 1:
             _fail("train.patience", "warm-up epochs must be >= 0 and patience >= 1")
         if not 0 < self.min_lr_ratio <= 1:

@@ -1,0 +1,283 @@
+"""The self-contained model file: write it atomically, load it safely.
+
+A model file is one ``torch.save`` archive that ``torch.load(path,
+weights_only=True)`` reads: a dict of tensors and plain str/int/float/bool/None
+lists and dicts. Keys:
+
+``format``, ``tool``, ``kind`` (``"model"``), ``version``
+    format version 1, ``"shotsmith"``, the writing shotsmith version.
+``settings``
+    the resolved settings (``audio``, ``model``, ``train``, ``render`` tables, ``preset``).
+``history``
+    one dict per epoch: ``epoch``, ``train_loss``, ``train_recon``, ``train_kl``,
+    ``val_loss``, ``val_recon``, ``val_kl``, ``val_rms_db``, ``lr``, ``kl_weight``, ``seconds``.
+``best``
+    the kept epoch: ``epoch``, ``val_loss``, ``val_recon``, ``val_kl``, ``val_rms_db``.
+``categories``, ``clip_names``, ``clip_categories``
+    sorted category names; per bank clip (row order) its name and category (or None).
+``mu``, ``logvar``
+    float32 ``(N, latent_dim)`` posterior means and log-variances of every bank clip.
+``split``
+    ``{"train": int64 (n,), "val": int64 (m,)}`` bank rows.
+``bank``
+    ``{"path", "n_clips", "names_sha256"}`` of the bank it was trained on.
+``state_dict``
+    the network weights.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from pipeline import __version__
+from pipeline.config import AudioSpec, Settings, settings_from_dict
+from pipeline.errors import ModelFileError, ParameterError, ShotsmithError
+from pipeline.model import ShotVAE, build_model
+
+FORMAT_VERSION = 1
+TOOL = "shotsmith"
+MODEL_KEYS = (
+    "format",
+    "tool",
+    "kind",
+    "settings",
+    "history",
+    "best",
+    "categories",
+    "clip_names",
+    "clip_categories",
+    "mu",
+    "logvar",
+    "split",
+    "state_dict",
+)
+_ZIP_MAGIC = b"PK\x03\x04"  # torch.save writes a zip archive
+
+
+def names_digest(names: list[str]) -> str:
+    """A fingerprint of a bank's clip list (order matters: rows are clip indices)."""
+    return hashlib.sha256("\n".join(names).encode("utf-8")).hexdigest()
+
+
+def save_atomic(obj: Any, path: Path) -> None:
+    """``torch.save`` to a temporary name, fsync, then rename over ``path``.
+
+    A process killed at any instant leaves either the previous complete file or
+    the new complete file at ``path``, never a partial one.
+    """
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    try:
+        with open(tmp, "wb") as fh:
+            torch.save(obj, fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+        try:  # make the rename itself durable
+            dir_fd = os.open(path.parent, os.O_RDONLY)
+        except OSError:
+            return
+        try:
+            os.fsync(dir_fd)
+        except OSError:
+            pass
+        finally:
+            os.close(dir_fd)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def read_archive(path: Path, *, kind: str) -> tuple[dict[str, Any], str]:
+    """Load a shotsmith archive with ``weights_only=True``; ``(payload, sha256)``.
+
+    Raises :class:`ModelFileError` (one line) for a missing, foreign, truncated,
+    newer-format or wrong-kind file.
+    """
+    path = Path(path)
+    what = "model file" if kind == "model" else "training checkpoint"
+    if path.is_dir():
+        raise ModelFileError(f"{path}: is a folder, not a {what}")
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise ModelFileError(f"{path}: {what} not found") from None
+    except OSError as exc:
+        raise ModelFileError(f"{path}: cannot read {what} ({exc.strerror or exc})") from None
+    if not data.startswith(_ZIP_MAGIC):
+        raise ModelFileError(f"{path}: not a shotsmith {what}")
+    try:
+        payload = torch.load(io.BytesIO(data), map_location="cpu", weights_only=True)
+    except Exception as exc:  # torch raises many types for a damaged archive
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        if "Weights only load failed" in str(exc):
+            raise ModelFileError(
+                f"{path}: not a shotsmith {what} (it holds objects other than tensors "
+                "and plain data; refusing to load it)"
+            ) from None
+        raise ModelFileError(f"{path}: truncated or corrupt {what} ({first[:160]})") from None
+    if not isinstance(payload, dict) or payload.get("tool") != TOOL:
+        raise ModelFileError(f"{path}: not a shotsmith {what}")
+    version = payload.get("format")
+    if not isinstance(version, int) or isinstance(version, bool):
+        raise ModelFileError(f"{path}: not a shotsmith {what} (no format version)")
+    if version > FORMAT_VERSION:
+        raise ModelFileError(
+            f"{path}: {what} format {version} is newer than this shotsmith reads "
+            f"({FORMAT_VERSION}); upgrade shotsmith"
+        )
+    if payload.get("kind") != kind:
+        other = "a training checkpoint" if payload.get("kind") == "checkpoint" else "a model file"
+        raise ModelFileError(f"{path}: is {other}, not a {what}")
+    return payload, hashlib.sha256(data).hexdigest()
+
+
+def model_payload(
+    *,
+    settings: Settings,
+    state_dict: dict[str, torch.Tensor],
+    history: list[dict[str, Any]],
+    best: dict[str, Any],
+    clip_names: list[str],
+    clip_categories: list[str | None],
+    mu: np.ndarray,
+    logvar: np.ndarray,
+    split: dict[str, np.ndarray],
+    bank: dict[str, Any],
+) -> dict[str, Any]:
+    """The dict that :func:`save_atomic` writes as a model file."""
+    return {
+        "format": FORMAT_VERSION,
+        "tool": TOOL,
+        "kind": "model",
+        "version": __version__,
+        "settings": settings.to_dict(),
+        "history": [dict(h) for h in history],
+        "best": dict(best),
+        "categories": sorted({c for c in clip_categories if c}),
+        "clip_names": list(clip_names),
+        "clip_categories": list(clip_categories),
+        "mu": torch.as_tensor(np.asarray(mu, dtype=np.float32)),
+        "logvar": torch.as_tensor(np.asarray(logvar, dtype=np.float32)),
+        "split": {k: torch.as_tensor(np.asarray(v, dtype=np.int64)) for k, v in split.items()},
+        "bank": dict(bank),
+        "state_dict": {k: v.detach().cpu().clone() for k, v in state_dict.items()},
+    }
+
+
+@dataclass
+class ModelFile:
+    """A loaded model file. ``decode``/``encode`` take and return numpy arrays."""
+
+    path: Path
+    sha256: str
+    settings: Settings
+    history: list[dict[str, Any]]
+    best: dict[str, Any]
+    categories: list[str]
+    clip_names: list[str]
+    clip_categories: list[str | None]
+    mu: np.ndarray
+    logvar: np.ndarray
+    split: dict[str, np.ndarray]
+    bank: dict[str, Any]
+    model: ShotVAE = field(repr=False)
+
+    @property
+    def audio(self) -> AudioSpec:
+        return self.settings.audio
+
+    @property
+    def latent_dim(self) -> int:
+        return self.settings.model.latent_dim
+
+    def decode(self, z: np.ndarray, *, batch_size: int = 64) -> np.ndarray:
+        """Codes ``(B, latent_dim)`` to float32 spectrograms ``(B, bins, frames)`` in [0, 1]."""
+        z = np.asarray(z, dtype=np.float32)
+        if z.ndim != 2 or z.shape[1] != self.latent_dim:
+            raise ParameterError(f"z must have shape (B, {self.latent_dim}), got {z.shape}")
+        if not np.isfinite(z).all():
+            raise ParameterError("z must be finite")
+        out = np.empty((len(z), self.audio.n_bins, self.audio.n_frames), dtype=np.float32)
+        self.model.eval()
+        with torch.inference_mode():
+            for i in range(0, len(z), batch_size):
+                out[i : i + batch_size] = self.model.decode(torch.from_numpy(z[i : i + batch_size]))
+        return out
+
+    def encode(self, U: np.ndarray, *, batch_size: int = 64) -> tuple[np.ndarray, np.ndarray]:
+        """Spectrograms ``(B, bins, frames)`` in [0, 1] to ``(mu, logvar)``, each ``(B, D)``."""
+        U = np.asarray(U, dtype=np.float32)
+        shape = (self.audio.n_bins, self.audio.n_frames)
+        if U.ndim != 3 or U.shape[1:] != shape:
+            raise ParameterError(f"U must have shape (B, {shape[0]}, {shape[1]}), got {U.shape}")
+        mu = np.empty((len(U), self.latent_dim), dtype=np.float32)
+        logvar = np.empty_like(mu)
+        self.model.eval()
+        with torch.inference_mode():
+            for i in range(0, len(U), batch_size):
+                m, lv = self.model.encode(torch.from_numpy(U[i : i + batch_size]))
+                mu[i : i + batch_size], logvar[i : i + batch_size] = m.numpy(), lv.numpy()
+        return mu, logvar
+
+
+def load_model_file(path: str | Path) -> ModelFile:
+    """Load and check a model file (always with ``weights_only=True``).
+
+    Raises
+    ------
+    ModelFileError
+        One line naming the file: missing, not a shotsmith model, truncated or
+        corrupt, newer format, missing keys, or shapes that do not fit the settings.
+    """
+    path = Path(path)
+    p, sha = read_archive(path, kind="model")
+    missing = [k for k in MODEL_KEYS if k not in p]
+    if missing:
+        raise ModelFileError(f"{path}: damaged model file (missing {', '.join(missing)})")
+    try:
+        settings = settings_from_dict(p["settings"], where=f"{path} settings")
+    except (ShotsmithError, TypeError, AttributeError) as exc:
+        raise ModelFileError(f"{path}: bad settings in model file ({exc})") from None
+    names, cats = list(p["clip_names"]), list(p["clip_categories"])
+    mu, logvar = p["mu"], p["logvar"]
+    d = settings.model.latent_dim
+    for key, t in (("mu", mu), ("logvar", logvar)):
+        if not isinstance(t, torch.Tensor) or tuple(t.shape) != (len(names), d):
+            got = tuple(t.shape) if isinstance(t, torch.Tensor) else type(t).__name__
+            raise ModelFileError(f"{path}: {key} has shape {got}, expected ({len(names)}, {d})")
+    if len(cats) != len(names):
+        raise ModelFileError(f"{path}: {len(cats)} clip categories for {len(names)} clips")
+    model = build_model(settings.audio, settings.model)
+    try:
+        model.load_state_dict(p["state_dict"], strict=True)
+    except (RuntimeError, KeyError, TypeError, AttributeError) as exc:
+        first = str(exc).strip().splitlines()[0][:160]
+        raise ModelFileError(f"{path}: weights do not fit the model settings ({first})") from None
+    model.eval()
+    try:
+        split = {k: np.asarray(v, dtype=np.int64) for k, v in dict(p["split"]).items()}
+    except (TypeError, ValueError):
+        raise ModelFileError(f"{path}: damaged model file (bad split)") from None
+    return ModelFile(
+        path=path,
+        sha256=sha,
+        settings=settings,
+        history=list(p["history"]),
+        best=dict(p["best"]),
+        categories=list(p["categories"]),
+        clip_names=names,
+        clip_categories=cats,
+        mu=mu.numpy().astype(np.float32),
+        logvar=logvar.numpy().astype(np.float32),
+        split=split,
+        bank=dict(p.get("bank", {})),
+        model=model,
+    )

@@ -1,0 +1,173 @@
+"""The model file: contents, safe loading, decode/encode, one-line errors."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+from synthbank import small_bank, small_settings
+
+from pipeline.bank import open_bank
+from pipeline.errors import ModelFileError, ParameterError
+from pipeline.modelfile import FORMAT_VERSION, MODEL_KEYS, load_model_file, save_atomic
+from pipeline.train import checkpoint_path, train_model
+
+
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory) -> tuple[Path, Path]:
+    work = tmp_path_factory.mktemp("modelfile")
+    bank = small_bank(work / "bank", n=36)
+    train_model(bank, work / "m.pt", small_settings(epochs=3))
+    return work / "m.pt", bank
+
+
+def payload(path: Path) -> dict:
+    return torch.load(path, weights_only=True)
+
+
+def test_model_file_loads_with_weights_only_in_a_fresh_process(trained):
+    model, _ = trained
+    code = (
+        "import sys, torch\n"
+        "p = torch.load(sys.argv[1], weights_only=True)\n"
+        "assert p['tool'] == 'shotsmith' and p['kind'] == 'model', p.keys()\n"
+        "print(sorted(p), p['mu'].shape[0])\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code, str(model)], capture_output=True,
+                         text=True, check=True, env={**os.environ, "PYTHONPATH": ""},
+                         cwd=model.parent)
+    assert out.stdout.split()[-1] == "36"
+    assert all(k in out.stdout for k in MODEL_KEYS)
+
+
+def test_model_file_holds_settings_history_clips_codes_and_split(trained):
+    model, bank_dir = trained
+    mf, bank = load_model_file(model), open_bank(bank_dir)
+    assert mf.settings.model == small_settings().model
+    assert mf.settings.audio == bank.audio == mf.audio
+    assert mf.settings.to_dict()["train"]["epochs"] == 3
+    assert mf.clip_names == bank.names
+    assert mf.clip_categories == [c["category"] for c in bank.clips]
+    assert mf.categories == ["one", "three", "two"]
+    assert mf.mu.shape == mf.logvar.shape == (36, 8) and mf.mu.dtype == np.float32
+    train, val = mf.split["train"], mf.split["val"]
+    assert np.array_equal(np.sort(np.concatenate([train, val])), np.arange(36))
+    assert len(mf.history) == 3
+    assert {"epoch", "train_loss", "val_loss", "val_recon", "val_kl", "lr", "seconds"} <= set(
+        mf.history[0])
+    assert mf.best["epoch"] in (1, 2, 3)
+    assert mf.best["val_loss"] == min(h["val_loss"] for h in mf.history)
+    assert len(mf.sha256) == 64
+    p = payload(model)
+    assert p["format"] == FORMAT_VERSION and p["bank"]["n_clips"] == 36
+    assert not checkpoint_path(model).exists()
+
+
+def test_stored_codes_are_the_kept_weights_encoding_of_the_bank(trained):
+    model, bank_dir = trained
+    mf = load_model_file(model)
+    U = np.asarray(open_bank(bank_dir).spectra, dtype=np.float32)
+    mu, logvar = mf.encode(U, batch_size=7)
+    np.testing.assert_allclose(mu, mf.mu, atol=1e-5)
+    np.testing.assert_allclose(logvar, mf.logvar, atol=1e-5)
+
+
+def test_decode_is_batched_deterministic_and_in_unit_range(trained):
+    mf = load_model_file(trained[0])
+    z = np.random.default_rng(0).normal(size=(10, 8)).astype(np.float32) * 3
+    a, b = mf.decode(z, batch_size=3), mf.decode(z)
+    assert a.shape == (10, mf.audio.n_bins, mf.audio.n_frames) and a.dtype == np.float32
+    np.testing.assert_allclose(a, b, atol=1e-6)
+    assert a.min() >= 0 and a.max() <= 1
+    with pytest.raises(ParameterError, match=r"shape \(B, 8\)"):
+        mf.decode(np.zeros((2, 3)))
+    with pytest.raises(ParameterError, match="shape"):
+        mf.encode(np.zeros((2, 5, 5)))
+
+
+def test_a_training_checkpoint_is_not_taken_for_a_model(trained, tmp_path):
+    _, bank = trained
+    ckpt = checkpoint_path(tmp_path / "m.pt")
+    save_atomic({"format": 1, "tool": "shotsmith", "kind": "checkpoint"}, ckpt)
+    with pytest.raises(ModelFileError, match="is a training checkpoint, not a model file"):
+        load_model_file(ckpt)
+
+
+# ------------------------------------------------------------------------- errors
+
+
+def _one_line(path: Path, match: str) -> str:
+    with pytest.raises(ModelFileError, match=match) as err:
+        load_model_file(path)
+    msg = str(err.value)
+    assert "\n" not in msg and str(path) in msg
+    return msg
+
+
+def test_missing_file(tmp_path):
+    _one_line(tmp_path / "nope.pt", "model file not found")
+
+
+def test_not_a_shotsmith_file(tmp_path):
+    (tmp_path / "a.pt").write_text("hello, I am text")
+    _one_line(tmp_path / "a.pt", "not a shotsmith model file")
+    torch.save({"weights": torch.zeros(2)}, tmp_path / "b.pt")
+    _one_line(tmp_path / "b.pt", "not a shotsmith model file")
+    torch.save([1, 2, 3], tmp_path / "c.pt")
+    _one_line(tmp_path / "c.pt", "not a shotsmith model file")
+
+
+def test_a_file_with_pickled_objects_is_refused_not_executed(tmp_path):
+    torch.save({"tool": "shotsmith", "thing": Path("x")}, tmp_path / "obj.pt")
+    _one_line(tmp_path / "obj.pt", "objects other than tensors and plain data")
+
+
+def test_truncated_file(trained, tmp_path):
+    data = trained[0].read_bytes()
+    for cut in (len(data) // 2, len(data) - 30, 200):
+        (tmp_path / "t.pt").write_bytes(data[:cut])
+        _one_line(tmp_path / "t.pt", "truncated or corrupt model file")
+
+
+def test_newer_format_asks_for_an_upgrade(trained, tmp_path):
+    p = payload(trained[0])
+    p["format"] = FORMAT_VERSION + 1
+    torch.save(p, tmp_path / "new.pt")
+    _one_line(tmp_path / "new.pt",
+              rf"format {FORMAT_VERSION + 1} is newer than this shotsmith reads "
+              rf"\({FORMAT_VERSION}\); upgrade shotsmith")
+
+
+def test_missing_keys(trained, tmp_path):
+    p = payload(trained[0])
+    del p["mu"], p["history"]
+    torch.save(p, tmp_path / "k.pt")
+    _one_line(tmp_path / "k.pt", "damaged model file .missing history, mu")
+
+
+def test_mismatched_shapes(trained, tmp_path):
+    p = payload(trained[0])
+    p["mu"] = p["mu"][:, :5]
+    torch.save(p, tmp_path / "mu.pt")
+    _one_line(tmp_path / "mu.pt", r"mu has shape \(36, 5\), expected \(36, 8\)")
+    p = payload(trained[0])
+    p["state_dict"]["dec_out.weight"] = torch.zeros(3, 3, 1)
+    torch.save(p, tmp_path / "w.pt")
+    _one_line(tmp_path / "w.pt", "weights do not fit the model settings")
+    p = payload(trained[0])
+    p["settings"]["model"]["latent_dim"] = 0
+    torch.save(p, tmp_path / "s.pt")
+    _one_line(tmp_path / "s.pt", "bad settings")
+
+
+def test_atomic_save_replaces_whole_files_and_leaves_no_temporary(tmp_path):
+    target = tmp_path / "x.pt"
+    save_atomic({"a": torch.ones(3)}, target)
+    save_atomic({"a": torch.zeros(4)}, target)
+    assert torch.equal(torch.load(target, weights_only=True)["a"], torch.zeros(4))
+    assert sorted(os.listdir(tmp_path)) == ["x.pt"]
