@@ -260,11 +260,17 @@ class OutputFolder:
         self._earlier = self._read_earlier()
 
     def _read_earlier(self) -> list[dict[str, Any]]:
+        path = self.path / MANIFEST_FILE
         try:
-            old = json.loads((self.path / MANIFEST_FILE).read_text(encoding="utf-8"))
+            old = json.loads(path.read_text(encoding="utf-8"))
             items = [it for it in old.get("items", []) if isinstance(it, dict) and "file" in it]
-        except (OSError, ValueError, AttributeError):
+        except FileNotFoundError:
             return []
+        except (OSError, ValueError, AttributeError):
+            old, items = None, []
+        if not self.overwrite and not (isinstance(old, dict) and old.get("tool") == "shotsmith"):
+            raise OutputError(f"{path}: exists and is not a shotsmith manifest; "
+                              "pass --overwrite to replace it, or choose another --out")
         return [dict(it, earlier_run=True) for it in items]
 
     def claim(self, stems: Iterable[str]) -> list[str]:
@@ -396,5 +402,6 @@ def render_spectra(
                     progress(done, total)
         complete = True
     finally:
-        folder.write_manifest(complete=complete)
+        if complete or folder.items or folder.failed:  # a run that wrote nothing leaves it be
+            folder.write_manifest(complete=complete)
     return folder.items
