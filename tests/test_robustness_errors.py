@@ -1,0 +1,232 @@
+"""Clear errors everywhere: every command, driven with bad inputs through the CLI.
+
+A user-caused failure is one line on stderr, ``error: <file or option>: <reason>``, exit code
+1; a usage error (a bad flag value, a missing argument) is exit code 2; no traceback unless
+``--debug``.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+from badfiles import hit, wav_bytes
+from typer.testing import CliRunner
+
+from pipeline.cli import app
+from pipeline.config import load_settings
+
+runner = CliRunner()
+TINY = load_settings("tiny")
+
+
+@pytest.fixture(scope="module")
+def w(tmp_path_factory) -> dict[str, Path]:
+    """A small world of good and bad inputs; the keys are used in the cases below."""
+    from modelfiles import write_model_file
+
+    from pipeline.ingest import ingest_folder
+
+    root = tmp_path_factory.mktemp("world")
+    src = root / "kit"
+    for cat in ("kick", "hat"):
+        (src / cat).mkdir(parents=True)
+        for i in range(3):
+            (src / cat / f"{cat}_{i:02d}.wav").write_bytes(
+                wav_bytes(hit(16000, f0=80 + 40 * i if cat == "kick" else 3000, seed=i), 16000))
+    (src / "bad.wav").write_bytes(b"RIFF")
+    ingest_folder(src, root / "bank", TINY, jobs=1)
+    paths = {
+        "src": src, "bank": root / "bank", "model": write_model_file(root / "m.pt", TINY),
+        "file": root / "a file.txt", "empty": root / "empty dir", "textdir": root / "only text",
+        "badtoml": root / "bad.toml", "unknownkey": root / "unknown.toml",
+        "jobs_bad": root / "jobs.toml", "jobs_key": root / "jobs2.toml",
+        "jobs_csv": root / "jobs.csv", "jobs_ext": root / "jobs.txt",
+        "foreign": root / "foreign bank", "existing": root / "existing out",
+        "badwav": src / "bad.wav", "nan": root / "nan.wav", "out": root / "out",
+    }
+    paths["file"].write_text("not a folder")
+    paths["empty"].mkdir()
+    paths["textdir"].mkdir()
+    (paths["textdir"] / "notes.wav").write_text("not audio")
+    paths["badtoml"].write_text("[audio\nsample_rate = ")
+    paths["unknownkey"].write_text("[audio]\nsample_rte = 16000\n")
+    paths["jobs_bad"].write_text("[[job]]\nsounds = 3\n")
+    paths["jobs_key"].write_text('[[job]]\nsounds = ["kick_00", "hat_01"]\nspeed = 2\n')
+    paths["jobs_csv"].write_text("first,last\nkick_00,hat_01\n")
+    paths["jobs_ext"].write_text("kick_00 hat_01\n")
+    paths["foreign"].mkdir()
+    (paths["foreign"] / "index.json").write_text('{"someone": "else"}')
+    paths["existing"].mkdir()
+    (paths["existing"] / "generate-0000.wav").write_bytes(b"my own file")
+    y = hit(16000)
+    y[10] = float("nan")
+    paths["nan"].write_bytes(wav_bytes(y, 16000, subtype="FLOAT"))
+    return paths
+
+
+# (argv with {key} placeholders, exit code, fragments the one line must contain)
+CASES = [
+    # ingest
+    (["ingest", "{src}/missing", "--bank", "{out}/b"], 1, ["missing", "not found"]),
+    (["ingest", "{file}", "--bank", "{out}/b"], 1, ["a file.txt", "must be a folder"]),
+    (["ingest", "{src}", "--bank", "{src}/bank"], 1, ["--bank", "inside SOURCE"]),
+    (["ingest", "{src}", "--bank", "{file}"], 1, ["a file.txt", "not a folder"]),
+    (["ingest", "{src}", "--bank", "{foreign}"], 1, ["index.json", "not a shotsmith bank"]),
+    (["ingest", "{empty}", "--bank", "{out}/b1"], 1, ["no usable audio files", "empty dir"]),
+    (["ingest", "{textdir}", "--bank", "{out}/b2"], 1, ["no usable audio", "1 skipped"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--preset", "nosuch"], 1, ["nosuch"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--preset", "{badtoml}"], 1,
+     ["bad.toml", "not valid TOML"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--preset", "{unknownkey}"], 1, ["sample_rte"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--sample-rate", "100"], 1,
+     ["audio.sample_rate", "100"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--duration", "0"], 1, ["audio.duration"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--jobs", "0"], 2, []),
+    (["ingest", "{src}"], 2, []),
+    # resynth
+    (["resynth", "{src}/missing", "--out", "{out}/r"], 1, ["missing", "not found"]),
+    (["resynth", "{src}", "--out", "{src}/r"], 1, ["--out", "inside SOURCE"]),
+    (["resynth", "{src}", "--out", "{file}"], 1, ["a file.txt", "not a folder"]),
+    (["resynth", "{textdir}", "--out", "{out}/r2"], 1, ["no usable audio files", "notes.wav"]),
+    (["resynth", "{src}", "--out", "{out}/r", "--bit-depth", "12"], 2, []),
+    (["resynth", "{src}", "--out", "{out}/r", "--peak-db", "3"], 2, []),
+    (["resynth", "{src}", "--out", "{out}/r", "--iterations", "-1"], 2, []),
+    (["resynth", "{src}", "--out", "{out}/r", "--loudness", "-99"], 1, ["render.loudness"]),
+    # train
+    (["train", "{out}/nobank", "--model", "{out}/m.pt"], 1, ["nobank", "not found"]),
+    (["train", "{empty}", "--model", "{out}/m.pt"], 1, ["index.json", "not found"]),
+    (["train", "{bank}", "--model", "{out}/no/such/m.pt"], 1, ["m.pt", "does not exist"]),
+    (["train", "{bank}", "--model", "{empty}"], 1, ["empty dir", "is a folder"]),
+    (["train", "{bank}", "--model", "{model}"], 1, ["m.pt", "already exists"]),
+    (["train", "{bank}", "--model", "{out}/r.pt", "--resume"], 1, ["r.pt.ckpt", "no checkpoint"]),
+    (["train", "{bank}", "--model", "{out}/d.pt", "--device", "tpu"], 1, ["device", "tpu"]),
+    (["train", "{bank}", "--model", "{out}/l.pt", "--latent-dim", "100000"], 1,
+     ["model.latent_dim"]),
+    (["train", "{bank}", "--model", "{out}/e.pt", "--epochs", "0"], 2, []),
+    (["train", "{bank}", "--model", "{out}/b.pt", "--beta", "-1"], 2, []),
+    # generate
+    (["generate", "{out}/none.pt", "--out", "{out}/g"], 1, ["none.pt", "not found"]),
+    (["generate", "{file}", "--out", "{out}/g"], 1, ["a file.txt", "not a shotsmith model"]),
+    (["generate", "{badwav}", "--out", "{out}/g"], 1, ["bad.wav", "not a shotsmith model"]),
+    (["generate", "{bank}", "--out", "{out}/g"], 1, ["bank", "is a folder"]),
+    (["generate", "{model}", "--out", "{file}"], 1, ["a file.txt", "not a folder"]),
+    (["generate", "{model}", "--out", "{out}/g", "--near", "snare"], 1, ["snare", "kick"]),
+    (["generate", "{model}", "--out", "{existing}", "-n", "2"], 1,
+     ["generate-0000.wav", "already exists", "--overwrite"]),
+    (["generate", "{model}", "--out", "{out}/g", "-n", "0"], 2, []),
+    (["generate", "{model}", "--out", "{out}/g", "--temperature", "-1"], 2, []),
+    (["generate", "{model}", "--out", "{out}/g", "--bit-depth", "8"], 2, []),
+    (["generate", "{model}", "--out", "{out}/g", "--loudness", "-80"], 1, ["render.loudness"]),
+    # interpolate
+    (["interpolate", "{model}", "kick_00", "--out", "{out}/i"], 2, []),
+    (["interpolate", "{model}", "kick_00", "nothing", "--out", "{out}/i"], 1,
+     ["'nothing'", "neither a clip"]),
+    (["interpolate", "{model}", "kick_00", "{badwav}", "--out", "{out}/i"], 1,
+     ["bad.wav", "not a readable audio file"]),
+    (["interpolate", "{model}", "kick_00", "{nan}", "--out", "{out}/i"], 1,
+     ["nan.wav", "NaN"]),
+    (["interpolate", "{model}", "kick_00", "{src}", "--out", "{out}/i"], 1, ["neither a clip"]),
+    (["interpolate", "{model}", "kick", "hat_01", "--out", "{out}/i"], 1,
+     ["'kick' matches 3 clips"]),
+    (["interpolate", "{model}", "kick_00", "hat_01", "--out", "{out}/i", "--path", "cubic"], 2,
+     []),
+    (["interpolate", "{model}", "kick_00", "hat_01", "--out", "{out}/i", "--steps", "1"], 2, []),
+    (["interpolate", "{model}", "--jobs-file", "{out}/none.toml", "--out", "{out}/i"], 1,
+     ["none.toml", "cannot read jobs file"]),
+    (["interpolate", "{model}", "--jobs-file", "{badtoml}", "--out", "{out}/i"], 1,
+     ["bad.toml", "not valid TOML"]),
+    (["interpolate", "{model}", "--jobs-file", "{jobs_bad}", "--out", "{out}/i"], 1,
+     ["jobs.toml", "job 1", "sounds"]),
+    (["interpolate", "{model}", "--jobs-file", "{jobs_key}", "--out", "{out}/i"], 1,
+     ["jobs2.toml", "'speed'"]),
+    (["interpolate", "{model}", "--jobs-file", "{jobs_csv}", "--out", "{out}/i"], 1,
+     ["jobs.csv", "'start' and 'end'"]),
+    (["interpolate", "{model}", "--jobs-file", "{jobs_ext}", "--out", "{out}/i"], 1,
+     ["jobs.txt", ".csv or .toml"]),
+    (["interpolate", "{model}", "a", "b", "--jobs-file", "{jobs_key}", "--out", "{out}/i"], 2,
+     []),
+    # vary
+    (["vary", "{model}", "snare_99", "--out", "{out}/v"], 1, ["'snare_99'", "neither a clip"]),
+    (["vary", "{model}", "{badwav}", "--out", "{out}/v"], 1, ["bad.wav", "not a readable"]),
+    (["vary", "{model}", "{out}/ghost.wav", "--out", "{out}/v"], 1, ["ghost.wav"]),
+    (["vary", "{model}", "kick_00", "--out", "{out}/v", "--amount", "-1"], 2, []),
+    (["vary", "{model}", "kick_00", "--out", "{out}/v", "-n", "0"], 2, []),
+    (["vary", "{model}", "--out", "{out}/v"], 2, []),
+    # inspect
+    (["inspect", "{out}/none.pt", "--out", "{out}/x"], 1, ["none.pt", "not found"]),
+    (["inspect", "{model}", "--out", "{out}/x", "--bank", "{out}/nobank"], 1, ["nobank"]),
+    (["inspect", "{model}", "--out", "{file}"], 1, ["a file.txt"]),
+    # demo
+    (["demo", "--out", "{file}"], 1, ["a file.txt"]),
+    (["demo", "--epochs", "0"], 2, []),
+    # the app itself
+    (["nosuchcommand"], 2, []),
+]
+
+
+def _argv(args: list[str], w: dict[str, Path]) -> list[str]:
+    return [a.format(**{k: str(v) for k, v in w.items()}) for a in args]
+
+
+@pytest.mark.parametrize("args, code, fragments", CASES, ids=[" ".join(c[0])[:60] for c in CASES])
+def test_bad_input_is_one_clear_line(w, args, code, fragments):
+    argv = _argv(args, w)
+    result = runner.invoke(app, argv)
+    assert result.exit_code == code, (argv, result.output, result.exception)
+    assert "Traceback" not in result.output
+    if code == 1:
+        lines = result.stderr.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith("error: "), result.output
+        for frag in fragments:
+            assert frag in lines[0], (frag, lines[0])
+        assert result.stdout == ""  # stdout stays clean for --json consumers
+    else:  # usage errors: click's usage message, naming the option
+        assert result.stderr.strip(), result.output
+        assert "Usage" in result.stderr or "No such command" in result.stderr
+
+
+def test_every_command_is_exercised():
+    commands = {c[0][0] for c in CASES}
+    assert commands >= {"ingest", "resynth", "train", "generate", "interpolate", "vary",
+                        "inspect", "demo"}
+    assert sum(c[1] == 1 for c in CASES) >= 40
+
+
+def test_nothing_was_written_by_the_failures(w):
+    """The failing commands above wrote nothing next to the good inputs."""
+    assert (w["existing"] / "generate-0000.wav").read_bytes() == b"my own file"
+    assert sorted(p.name for p in w["existing"].iterdir()) == ["generate-0000.wav"]
+    assert sorted(p.name for p in w["foreign"].iterdir()) == ["index.json"]
+    assert not (w["src"] / "bank").exists() and not (w["src"] / "r").exists()
+
+
+def test_debug_shows_the_traceback(w, tmp_path):
+    argv = ["generate", str(tmp_path / "none.pt"), "--out", str(tmp_path / "g")]
+    plain = subprocess.run([sys.executable, "-m", "pipeline", *argv], capture_output=True,
+                           text=True, timeout=120)
+    assert plain.returncode == 1 and "Traceback" not in plain.stderr
+    assert plain.stderr.strip().splitlines() == [f"error: {tmp_path / 'none.pt'}: model file "
+                                                 "not found"]
+    debug = subprocess.run([sys.executable, "-m", "pipeline", "--debug", *argv],
+                           capture_output=True, text=True, timeout=120)
+    assert debug.returncode == 1 and "Traceback" in debug.stderr
+    assert "ModelFileError" in debug.stderr
+
+
+def test_a_foreign_manifest_in_out_is_not_replaced_without_overwrite(w, tmp_path):
+    out = tmp_path / "project"
+    out.mkdir()
+    (out / "manifest.json").write_text('{"my": "own notes"}')
+    args = ["generate", str(w["model"]), "--out", str(out), "-n", "1", "--iterations", "1"]
+    result = runner.invoke(app, args)
+    assert result.exit_code == 1
+    assert result.stderr.strip() == (f"error: {out / 'manifest.json'}: exists and is not a "
+                                     "shotsmith manifest; pass --overwrite to replace it, or "
+                                     "choose another --out")
+    assert sorted(p.name for p in out.iterdir()) == ["manifest.json"]
+    assert (out / "manifest.json").read_text() == '{"my": "own notes"}'
+    assert runner.invoke(app, [*args, "--overwrite"]).exit_code == 0
+    assert '"tool": "shotsmith"' in (out / "manifest.json").read_text()
