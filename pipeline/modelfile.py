@@ -228,6 +228,21 @@ class ModelFile:
         return mu, logvar
 
 
+def _check_weight_shapes(path: Path, settings: Settings, state: Any) -> None:
+    """Compare the file's tensors with the network its settings describe, built on the meta
+    device (no memory), so settings that claim a huge network fail here, not in an allocator."""
+    with torch.device("meta"):
+        shell = build_model(settings.audio, settings.model)
+    want = {k: tuple(v.shape) for k, v in shell.state_dict().items()}
+    if not isinstance(state, dict) or not all(isinstance(v, torch.Tensor) for v in state.values()):
+        raise ModelFileError(f"{path}: weights do not fit the model settings (not a tensor dict)")
+    got = {k: tuple(v.shape) for k, v in state.items()}
+    if got != want:
+        bad = sorted(set(want) ^ set(got)) or sorted(k for k in want if want[k] != got[k])
+        raise ModelFileError(f"{path}: weights do not fit the model settings ({bad[0]}: "
+                             f"expected {want.get(bad[0])}, found {got.get(bad[0])})")
+
+
 def load_model_file(path: str | Path) -> ModelFile:
     """Load and check a model file (always with ``weights_only=True``).
 
@@ -255,6 +270,7 @@ def load_model_file(path: str | Path) -> ModelFile:
             raise ModelFileError(f"{path}: {key} has shape {got}, expected ({len(names)}, {d})")
     if len(cats) != len(names):
         raise ModelFileError(f"{path}: {len(cats)} clip categories for {len(names)} clips")
+    _check_weight_shapes(path, settings, p["state_dict"])
     model = build_model(settings.audio, settings.model)
     try:
         model.load_state_dict(p["state_dict"], strict=True)
