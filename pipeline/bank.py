@@ -90,6 +90,52 @@ def read_json(path: Path, what: str) -> Any:
         raise BankError(f"{path}: {what} is unreadable ({exc})") from None
 
 
+class RowFile:
+    """A ``.npy`` file of ``shape[0]`` equal rows, written and read with ``pwrite``/``pread``.
+
+    Never memory-mapped: pages written through a map stay resident (and dirty) in the
+    writing process, so a 20,000-clip bank would add its whole size to the process's peak
+    memory; plain writes leave them to the page cache. A full disk is an ``OSError``
+    (ENOSPC) at the write, where a map would raise SIGBUS.
+    """
+
+    def __init__(self, path: Path, dtype: np.dtype | str, shape: tuple[int, ...]) -> None:
+        self.path = Path(path)
+        self.dtype = np.dtype(dtype)
+        self.shape = tuple(int(n) for n in shape)
+        self.row_shape = self.shape[1:]
+        self.row_bytes = self.dtype.itemsize * int(np.prod(self.row_shape, dtype=np.int64))
+        header = {"descr": np.lib.format.dtype_to_descr(self.dtype), "fortran_order": False,
+                  "shape": self.shape}
+        with open(self.path, "wb") as fh:
+            np.lib.format.write_array_header_1_0(fh, header)
+            self.offset = fh.tell()
+            fh.truncate(self.offset + self.shape[0] * self.row_bytes)
+        self._fd: int | None = os.open(self.path, os.O_RDWR)
+
+    def put(self, row: int, unit: np.ndarray) -> None:
+        data = np.ascontiguousarray(unit, dtype=self.dtype)
+        if data.shape != self.row_shape or not 0 <= row < self.shape[0]:
+            raise ValueError(f"row {row} of shape {data.shape} does not fit {self.shape}")
+        view, at = memoryview(data).cast("B"), self.offset + row * self.row_bytes
+        while view:
+            n = os.pwrite(self._fd, view, at)
+            view, at = view[n:], at + n
+
+    def get(self, row: int) -> np.ndarray:
+        buf = os.pread(self._fd, self.row_bytes, self.offset + row * self.row_bytes)
+        return np.frombuffer(buf, dtype=self.dtype).reshape(self.row_shape)
+
+    def close(self, *, sync: bool = False) -> None:
+        if self._fd is not None:
+            try:
+                if sync:
+                    os.fsync(self._fd)
+            finally:
+                os.close(self._fd)
+                self._fd = None
+
+
 class BankWriter:
     """Stream rows into a new ``spectra.npy`` and commit it with its index.
 
@@ -104,20 +150,17 @@ class BankWriter:
         self.path.mkdir(parents=True, exist_ok=True)
         self._tmp = self.path / f".{SPECTRA_FILE}.tmp-{os.getpid()}"
         shape = (n_clips, audio.n_bins, audio.n_frames)
-        self._rows = np.lib.format.open_memmap(
-            self._tmp, mode="w+", dtype=np.dtype(audio.spectra_dtype), shape=shape
-        )
+        self._rows = RowFile(self._tmp, audio.spectra_dtype, shape)
 
     def put(self, row: int, unit: np.ndarray) -> None:
-        self._rows[row] = unit
+        self._rows.put(row, unit)
 
     def commit(
         self, clips: list[dict[str, Any]], settings: dict[str, Any], report: dict[str, Any]
     ) -> None:
         if len(clips) != self._rows.shape[0]:
             raise ValueError("one index entry per spectra row is required")
-        self._rows.flush()
-        del self._rows
+        self._rows.close(sync=True)
         index = {
             "format": BANK_FORMAT,
             "tool": "shotsmith",
@@ -137,8 +180,7 @@ class BankWriter:
         write_json_atomic(self.path / REPORT_FILE, report)
 
     def abort(self) -> None:
-        if hasattr(self, "_rows"):
-            del self._rows
+        self._rows.close()
         self._tmp.unlink(missing_ok=True)
 
 

@@ -29,6 +29,7 @@ from pipeline.bank import (
     INDEX_FILE,
     REPORT_FILE,
     BankWriter,
+    RowFile,
     open_bank,
     read_json,
     write_json_atomic,
@@ -264,10 +265,8 @@ def ingest_folder(
     writer = None
     try:
         if todo:
-            staging = np.lib.format.open_memmap(
-                staging_path, mode="w+", dtype=np.dtype(spec.spectra_dtype),
-                shape=(len(todo), spec.n_bins, spec.n_frames),
-            )
+            staging = RowFile(staging_path, spec.spectra_dtype,
+                              (len(todo), spec.n_bins, spec.n_frames))
 
         def on_result(result: tuple) -> None:
             nonlocal done
@@ -278,7 +277,7 @@ def ingest_folder(
                     {"path": f.rel, "reason": info, "size": f.size, "mtime_ns": f.mtime_ns}
                 )
             else:
-                staging[slot] = unit
+                staging.put(slot, unit)
                 decoded[slot] = info
             done += 1
             if progress:
@@ -292,7 +291,7 @@ def ingest_folder(
         for f, row, clip in reused:
             rows.append((f, clip, lambda r=row: old.spectra[r]))
         for slot, meta in decoded.items():
-            rows.append((todo[slot], meta, lambda s=slot: staging[s]))
+            rows.append((todo[slot], meta, lambda s=slot: staging.get(s)))
         rows.sort(key=lambda item: item[0].rel)
         skipped.sort(key=lambda s: s["path"])
         names = _unique_names([f.rel for f, _, _ in rows])
@@ -342,7 +341,8 @@ def ingest_folder(
     finally:
         if writer is not None:
             writer.abort()
-        staging = None
+        if staging is not None:
+            staging.close()
         staging_path.unlink(missing_ok=True)
     return IngestSummary(
         accepted=len(clips),
