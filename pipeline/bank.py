@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.config import AudioSpec, spec_from_dict
-from pipeline.errors import BankError, PresetError
+from pipeline.errors import BankError, OutputError, PresetError
 
 BANK_FORMAT = 1
 SPECTRA_FILE = "spectra.npy"
@@ -66,17 +66,29 @@ def _json_to_temp(path: Path, data: Any) -> Path:
             fh.write("\n")
             fh.flush()
             os.fsync(fh.fileno())
-    except BaseException:
+    except BaseException as exc:
         tmp.unlink(missing_ok=True)
+        if isinstance(exc, OSError):
+            raise _cannot_write(path, exc) from None
         raise
     return tmp
 
 
+def _cannot_write(path: Path, exc: OSError) -> OutputError:
+    why = "permission denied" if isinstance(exc, PermissionError) else exc.strerror or str(exc)
+    return OutputError(f"{path}: cannot write ({why})")
+
+
 def write_json_atomic(path: Path, data: Any) -> None:
-    """Write JSON to ``path`` via a temporary file and a rename."""
+    """Write JSON to ``path`` via a temporary file and a rename.
+
+    Raises :class:`OutputError` naming ``path`` when it cannot be written (full disk...).
+    """
     tmp = _json_to_temp(path, data)
     try:
         os.replace(tmp, path)
+    except OSError as exc:
+        raise _cannot_write(path, exc) from None
     finally:
         tmp.unlink(missing_ok=True)
 
@@ -107,20 +119,27 @@ class RowFile:
         self.row_bytes = self.dtype.itemsize * int(np.prod(self.row_shape, dtype=np.int64))
         header = {"descr": np.lib.format.dtype_to_descr(self.dtype), "fortran_order": False,
                   "shape": self.shape}
-        with open(self.path, "wb") as fh:
-            np.lib.format.write_array_header_1_0(fh, header)
-            self.offset = fh.tell()
-            fh.truncate(self.offset + self.shape[0] * self.row_bytes)
-        self._fd: int | None = os.open(self.path, os.O_RDWR)
+        self._fd: int | None = None
+        try:
+            with open(self.path, "wb") as fh:
+                np.lib.format.write_array_header_1_0(fh, header)
+                self.offset = fh.tell()
+                fh.truncate(self.offset + self.shape[0] * self.row_bytes)
+            self._fd = os.open(self.path, os.O_RDWR)
+        except OSError as exc:
+            raise _cannot_write(self.path.parent, exc) from None
 
     def put(self, row: int, unit: np.ndarray) -> None:
         data = np.ascontiguousarray(unit, dtype=self.dtype)
         if data.shape != self.row_shape or not 0 <= row < self.shape[0]:
             raise ValueError(f"row {row} of shape {data.shape} does not fit {self.shape}")
         view, at = memoryview(data).cast("B"), self.offset + row * self.row_bytes
-        while view:
-            n = os.pwrite(self._fd, view, at)
-            view, at = view[n:], at + n
+        try:
+            while view:
+                n = os.pwrite(self._fd, view, at)
+                view, at = view[n:], at + n
+        except OSError as exc:
+            raise _cannot_write(self.path.parent, exc) from None
 
     def get(self, row: int) -> np.ndarray:
         buf = os.pread(self._fd, self.row_bytes, self.offset + row * self.row_bytes)
@@ -131,6 +150,8 @@ class RowFile:
             try:
                 if sync:
                     os.fsync(self._fd)
+            except OSError as exc:
+                raise _cannot_write(self.path.parent, exc) from None
             finally:
                 os.close(self._fd)
                 self._fd = None
