@@ -282,7 +282,8 @@ def test_full_disk_during_generate_keeps_earlier_files(model_file, tmp_path, mon
         assert set(first) <= set(wavs) and len(wavs) == len(first) + 4
 
 
-def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch):
+@pytest.mark.parametrize("where", ["index", "rows"])
+def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, where):
     from pipeline import bank
     from pipeline.bank import open_bank
     from pipeline.ingest import ingest_folder
@@ -296,20 +297,28 @@ def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch):
     old = open_bank(tmp_path / "bank")
     old_rows = np.array(old.spectra)
     (src / "s3.wav").write_bytes(wav_bytes(hit(16000, seed=9), 16000))
-    real_dump = bank.json.dump
 
-    def dump(obj, *a, **k):  # the new index.json cannot be written
-        if isinstance(obj, dict) and "clips" in obj:
-            raise OSError(errno.ENOSPC, "No space left on device")
-        return real_dump(obj, *a, **k)
+    def full(*a, **k):
+        raise OSError(errno.ENOSPC, "No space left on device")
 
-    monkeypatch.setattr(bank.json, "dump", dump)
+    if where == "index":  # the new index.json cannot be written
+        real_dump = bank.json.dump
+
+        def dump(obj, *a, **k):
+            if isinstance(obj, dict) and "clips" in obj:
+                full()
+            return real_dump(obj, *a, **k)
+
+        monkeypatch.setattr(bank.json, "dump", dump)
+        named = tmp_path / "bank" / "index.json"
+    else:  # a spectrogram row cannot be written (a memory map would raise SIGBUS here)
+        monkeypatch.setattr(bank.os, "pwrite", full)
+        named = tmp_path / "bank"
     result = runner.invoke(app, ["ingest", str(src), "--bank", str(tmp_path / "bank"),
                                  "--preset", "tiny", "--jobs", "1"])
     monkeypatch.undo()
     assert result.exit_code == 1
-    lines = result.output.strip().splitlines()
-    assert len(lines) == 1 and "No space left on device" in lines[0], result.output
+    assert result.stderr.strip() == f"error: {named}: cannot write (No space left on device)"
     kept = open_bank(tmp_path / "bank")  # the previous bank, whole
     assert len(kept) == 3 and np.array_equal(np.array(kept.spectra), old_rows)
     assert not [p.name for p in (tmp_path / "bank").iterdir() if p.name.startswith(".")]
