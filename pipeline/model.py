@@ -16,6 +16,8 @@ squared error summed over bins x frames and ``KL`` summed over latent dimensions
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import torch
 from torch import nn
@@ -205,6 +207,24 @@ def kl_weight_at(epoch: float, *, beta: float, warmup_epochs: float) -> float:
     if warmup_epochs <= 0:
         return float(beta)
     return float(beta) * min(1.0, max(0.0, epoch / warmup_epochs))
+
+
+def lr_at(
+    epoch: float, *, learning_rate: float, warmup_epochs: float, epochs: float,
+    min_lr_ratio: float,
+) -> float:
+    """Learning rate after ``epoch`` (fractional) epochs.
+
+    Linear warm-up from ``learning_rate * min_lr_ratio`` to ``learning_rate``, then
+    cosine decay back to ``learning_rate * min_lr_ratio`` at ``epochs`` (cosine
+    annealing without restarts, Loshchilov & Hutter 2017, "SGDR").
+    """
+    low = learning_rate * min_lr_ratio
+    if epoch < warmup_epochs:
+        return low + (learning_rate - low) * epoch / warmup_epochs
+    span = max(epochs - warmup_epochs, 1e-9)
+    t = min(max((epoch - warmup_epochs) / span, 0.0), 1.0)
+    return low + (learning_rate - low) * 0.5 * (1.0 + math.cos(math.pi * t))
 
 
 @torch.no_grad()

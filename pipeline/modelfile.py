@@ -27,6 +27,7 @@ lists and dicts. Keys:
 
 from __future__ import annotations
 
+import glob
 import hashlib
 import io
 import os
@@ -39,7 +40,7 @@ import torch
 
 from pipeline import __version__
 from pipeline.config import AudioSpec, Settings, settings_from_dict
-from pipeline.errors import ModelFileError, ParameterError, ShotsmithError
+from pipeline.errors import ModelFileError, ParameterError, ShotsmithError, TrainingError
 from pipeline.model import ShotVAE, build_model
 
 FORMAT_VERSION = 1
@@ -95,6 +96,29 @@ def save_atomic(obj: Any, path: Path) -> None:
         tmp.unlink(missing_ok=True)
 
 
+def remove_stale_temporaries(path: str | Path) -> list[Path]:
+    """Delete the temporary files :func:`save_atomic` left for ``path`` in killed processes.
+
+    Only files named ``.NAME.tmp-PID`` whose process no longer exists are removed.
+    """
+    path = Path(path)
+    removed = []
+    for tmp in path.parent.glob(f".{glob.escape(path.name)}.tmp-*"):
+        pid = tmp.name.rsplit("-", 1)[-1]
+        if not pid.isdigit():
+            continue
+        try:
+            os.kill(int(pid), 0)
+            continue  # still running
+        except ProcessLookupError:
+            pass
+        except (PermissionError, OverflowError, OSError):
+            continue
+        tmp.unlink(missing_ok=True)
+        removed.append(tmp)
+    return removed
+
+
 def read_archive(path: Path, *, kind: str) -> tuple[dict[str, Any], str]:
     """Load a shotsmith archive with ``weights_only=True``; ``(payload, sha256)``.
 
@@ -137,6 +161,24 @@ def read_archive(path: Path, *, kind: str) -> tuple[dict[str, Any], str]:
         other = "a training checkpoint" if payload.get("kind") == "checkpoint" else "a model file"
         raise ModelFileError(f"{path}: is {other}, not a {what}")
     return payload, hashlib.sha256(data).hexdigest()
+
+
+def check_resumable(
+    ckpt: dict[str, Any], path: Path, *, settings: Settings, bank: dict[str, Any]
+) -> None:
+    """Refuse a checkpoint made with other audio or model settings, or from another bank."""
+    new = settings.to_dict()
+    for table in ("audio", "model"):
+        diff = [f"{table}.{k} is {new[table].get(k)!r} here but {v!r} in the checkpoint"
+                for k, v in ckpt["settings"][table].items() if new[table].get(k) != v]
+        if diff:
+            raise TrainingError(
+                f"{path}: cannot resume with different {table} settings ({'; '.join(diff)}); "
+                "pass the same settings, or train afresh without --resume"
+            )
+    if ckpt["bank"]["names_sha256"] != bank["names_sha256"]:
+        raise TrainingError(f"{path}: the bank {bank['path']} has changed since this "
+                            "checkpoint; train afresh without --resume")
 
 
 def model_payload(
@@ -243,6 +285,24 @@ def _check_weight_shapes(path: Path, settings: Settings, state: Any) -> None:
                              f"expected {want.get(bad[0])}, found {got.get(bad[0])})")
 
 
+def _check_weights(path: Path, state: Any, settings: Settings) -> None:
+    """Compare names and shapes with the network the settings describe, before allocating it."""
+    with torch.device("meta"):  # shapes only, no memory: a hostile file cannot make us allocate
+        expected = {k: tuple(v.shape) for k, v in build_model(settings.audio, settings.model)
+                    .state_dict().items()}
+    if not isinstance(state, dict):
+        raise ModelFileError(f"{path}: damaged model file (state_dict is not a mapping)")
+    names = set(expected) ^ set(state)
+    if names:
+        raise ModelFileError(f"{path}: weights do not fit the model settings (unexpected or "
+                             f"missing {', '.join(sorted(names)[:3])})")
+    for key, shape in expected.items():
+        got = tuple(state[key].shape) if isinstance(state[key], torch.Tensor) else None
+        if got != shape:
+            raise ModelFileError(f"{path}: weights do not fit the model settings ({key} has "
+                                 f"shape {got}, the settings give {shape})")
+
+
 def load_model_file(path: str | Path) -> ModelFile:
     """Load and check a model file (always with ``weights_only=True``).
 
@@ -271,6 +331,7 @@ def load_model_file(path: str | Path) -> ModelFile:
     if len(cats) != len(names):
         raise ModelFileError(f"{path}: {len(cats)} clip categories for {len(names)} clips")
     _check_weight_shapes(path, settings, p["state_dict"])
+    _check_weights(path, p["state_dict"], settings)
     model = build_model(settings.audio, settings.model)
     try:
         model.load_state_dict(p["state_dict"], strict=True)

@@ -14,6 +14,7 @@ normally.
 
 from __future__ import annotations
 
+import ctypes
 import math
 import os
 import shlex
@@ -45,14 +46,17 @@ from pipeline.model import (
     evaluate,
     init_template,
     kl_weight_at,
+    lr_at,
     vae_loss,
 )
 from pipeline.modelfile import (
     FORMAT_VERSION,
     TOOL,
+    check_resumable,
     model_payload,
     names_digest,
     read_archive,
+    remove_stale_temporaries,
     save_atomic,
 )
 
@@ -62,27 +66,6 @@ CHECKPOINT_SUFFIX = ".ckpt"
 def checkpoint_path(model_path: str | Path) -> Path:
     p = Path(model_path)
     return p.with_name(p.name + CHECKPOINT_SUFFIX)
-
-
-# --- pure functions -------------------------------------------------------------------
-
-
-def lr_at(
-    epoch: float, *, learning_rate: float, warmup_epochs: float, epochs: float,
-    min_lr_ratio: float,
-) -> float:
-    """Learning rate after ``epoch`` (fractional) epochs.
-
-    Linear warm-up from ``learning_rate * min_lr_ratio`` to ``learning_rate``, then
-    cosine decay back to ``learning_rate * min_lr_ratio`` at ``epochs`` (cosine
-    annealing without restarts, Loshchilov & Hutter 2017, "SGDR").
-    """
-    low = learning_rate * min_lr_ratio
-    if epoch < warmup_epochs:
-        return low + (learning_rate - low) * epoch / warmup_epochs
-    span = max(epochs - warmup_epochs, 1e-9)
-    t = min(max((epoch - warmup_epochs) / span, 0.0), 1.0)
-    return low + (learning_rate - low) * 0.5 * (1.0 + math.cos(math.pi * t))
 
 
 # --- summary --------------------------------------------------------------------------
@@ -138,6 +121,23 @@ def _available_cores() -> int:
         return len(os.sched_getaffinity(0))
     except AttributeError:  # pragma: no cover - not on Linux
         return os.cpu_count() or 1
+
+
+def keep_freed_buffers() -> bool:
+    """Ask glibc's malloc to keep large freed buffers for reuse; True if it took effect.
+
+    By default glibc returns big freed blocks to the system (``munmap``, heap
+    trimming), so the next step's activations page-fault their memory in again.
+    A 32 MiB mmap threshold (glibc's maximum) and no trimming keep them; the
+    benchmark measures the effect (tests/benchmarks/bench_train.py). Process-wide
+    and not undone; peak memory is unchanged.
+    """
+    try:
+        mallopt = ctypes.CDLL(None).mallopt
+    except (OSError, AttributeError):  # not glibc
+        return False
+    m_trim_threshold, m_mmap_threshold = -1, -3  # from glibc's malloc.h
+    return bool(mallopt(m_mmap_threshold, 32 << 20)) and bool(mallopt(m_trim_threshold, 2**31 - 1))
 
 
 def resume_command(bank_dir: Path, model_path: Path, settings: Settings) -> str:
@@ -215,6 +215,8 @@ def train_model(
     if resume and not ckpt_path.exists():
         raise TrainingError(f"{ckpt_path}: no checkpoint to resume (train without --resume)")
     dev = pick_device(device)
+    for path in (model_path, ckpt_path):  # left by a run that was killed while saving
+        remove_stale_temporaries(path)
     old_threads = torch.get_num_threads()
     threads = _available_cores() if dev.type == "cpu" else old_threads
     stop = interrupt if interrupt is not None else threading.Event()
@@ -230,7 +232,10 @@ def train_model(
     try:
         torch.set_num_threads(threads)
         # training seeds torch's global generator; leave the caller's state untouched
-        with torch.random.fork_rng(devices=[dev] if dev.type == "cuda" else []):
+        forked = []
+        if dev.type == "cuda":
+            forked = [dev.index if dev.index is not None else torch.cuda.current_device()]
+        with torch.random.fork_rng(devices=forked):
             run = _Run(bank, bank_dir, model_path, settings.replace(audio=bank.audio), dev)
             return run.train(resume=resume, emit=progress or (lambda d: None), stop=stop, t0=t0,
                              threads=threads)
@@ -272,18 +277,7 @@ class _Run:
 
     def _restore(self) -> dict[str, Any]:
         ckpt, _ = read_archive(self.ckpt_path, kind="checkpoint")
-        new = self.settings.to_dict()
-        for table in ("audio", "model"):
-            diff = [f"{table}.{k} is {new[table].get(k)!r} here but {v!r} in the checkpoint"
-                    for k, v in ckpt["settings"][table].items() if new[table].get(k) != v]
-            if diff:
-                raise TrainingError(
-                    f"{self.ckpt_path}: cannot resume with different {table} settings "
-                    f"({'; '.join(diff)}); pass the same settings, or train afresh without --resume"
-                )
-        if ckpt["bank"]["names_sha256"] != self.bank_info["names_sha256"]:
-            raise TrainingError(f"{self.ckpt_path}: the bank {self.bank_dir} has changed since "
-                                "this checkpoint; train afresh without --resume")
+        check_resumable(ckpt, self.ckpt_path, settings=self.settings, bank=self.bank_info)
         self.model.load_state_dict(ckpt["model_state"])
         self.opt.load_state_dict(ckpt["optimizer_state"])
         self.opt.param_groups[0]["weight_decay"] = self.t.weight_decay  # this run's settings win

@@ -14,7 +14,13 @@ from synthbank import small_bank, small_settings
 
 from pipeline.bank import open_bank
 from pipeline.errors import ModelFileError, ParameterError
-from pipeline.modelfile import FORMAT_VERSION, MODEL_KEYS, load_model_file, save_atomic
+from pipeline.modelfile import (
+    FORMAT_VERSION,
+    MODEL_KEYS,
+    load_model_file,
+    remove_stale_temporaries,
+    save_atomic,
+)
 from pipeline.train import checkpoint_path, train_model
 
 
@@ -171,3 +177,15 @@ def test_atomic_save_replaces_whole_files_and_leaves_no_temporary(tmp_path):
     save_atomic({"a": torch.zeros(4)}, target)
     assert torch.equal(torch.load(target, weights_only=True)["a"], torch.zeros(4))
     assert sorted(os.listdir(tmp_path)) == ["x.pt"]
+
+
+def test_temporaries_of_killed_processes_are_removed_and_live_ones_kept(tmp_path):
+    target = tmp_path / "m.pt"
+    dead_pid = int(Path("/proc/sys/kernel/pid_max").read_text()) + 1  # no such process
+    dead = tmp_path / f".m.pt.tmp-{dead_pid}"
+    live = tmp_path / f".m.pt.tmp-{os.getpid()}"
+    other = tmp_path / f".other.pt.tmp-{dead_pid}"
+    for p in (dead, live, other):
+        p.write_bytes(b"partial")
+    assert remove_stale_temporaries(target) == [dead]
+    assert live.exists() and other.exists() and not dead.exists()

@@ -284,6 +284,7 @@ def test_sigkill_right_after_a_checkpoint_leaves_a_loadable_model(bank, tmp_path
     assert done >= 2
     s = train_model(bank, model, small_settings(epochs=done + 1), resume=True)
     assert s.epochs == done + 1 and s.epochs_this_run == 1
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["m.pt"]  # no temporaries left
 
 
 def test_ctrl_c_stops_saves_and_prints_the_resume_command(bank, tmp_path):
