@@ -40,7 +40,13 @@ import torch
 
 from pipeline import __version__
 from pipeline.config import AudioSpec, Settings, settings_from_dict
-from pipeline.errors import ModelFileError, ParameterError, ShotsmithError, TrainingError
+from pipeline.errors import (
+    ModelFileError,
+    OutputError,
+    ParameterError,
+    ShotsmithError,
+    TrainingError,
+)
 from pipeline.model import ShotVAE, build_model
 
 FORMAT_VERSION = 1
@@ -76,12 +82,20 @@ def save_atomic(obj: Any, path: Path) -> None:
     """
     path = Path(path)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    # Serialise first: torch's zip writer reports a failed file write (a full disk) as an
+    # opaque RuntimeError; writing the finished bytes ourselves gives a plain OSError.
+    buf = io.BytesIO()
+    torch.save(obj, buf)
     try:
-        with open(tmp, "wb") as fh:
-            torch.save(obj, fh)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
+        try:
+            with open(tmp, "wb") as fh:
+                fh.write(buf.getbuffer())
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.replace(tmp, path)
+        except OSError as exc:
+            why = "permission denied" if isinstance(exc, PermissionError) else exc.strerror or exc
+            raise OutputError(f"{path}: cannot write ({why})") from None
         try:  # make the rename itself durable
             dir_fd = os.open(path.parent, os.O_RDONLY)
         except OSError:
