@@ -325,8 +325,6 @@ def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, 
 
 
 def test_full_disk_while_saving_a_model_keeps_the_last_one(bank, tmp_path, monkeypatch):
-    import torch
-
     from pipeline import modelfile
     from pipeline.modelfile import load_model_file
     from pipeline.train import train_model
@@ -334,19 +332,23 @@ def test_full_disk_while_saving_a_model_keeps_the_last_one(bank, tmp_path, monke
     bank_dir, preset = bank
     settings = load_settings(preset, {"train": {"epochs": 4, "seed": 2},
                                       "model": {"latent_dim": 4}})
-    real_save = torch.save
+    real_open = open
     saves = []
 
-    def save(obj, f, *a, **k):
-        saves.append(obj.get("kind"))
-        if len(saves) > 2:  # model and checkpoint of epoch 1 went through
-            raise OSError(errno.ENOSPC, "No space left on device")
-        return real_save(obj, f, *a, **k)
+    def full_open(file, mode="r", *a, **k):
+        if "w" in mode:
+            saves.append(file)
+            if len(saves) > 2:  # model and checkpoint of epoch 1 went through
+                raise OSError(errno.ENOSPC, "No space left on device", str(file))
+        return real_open(file, mode, *a, **k)
 
-    monkeypatch.setattr(modelfile.torch, "save", save)
-    with pytest.raises(OSError, match="No space left"):
-        train_model(bank_dir, tmp_path / "model.pt", settings)
+    monkeypatch.setattr(modelfile, "open", full_open, raising=False)
+    model = tmp_path / "model.pt"
+    with pytest.raises(OutputError) as info:
+        train_model(bank_dir, model, settings)
     monkeypatch.undo()
-    mf = load_model_file(tmp_path / "model.pt")
+    assert str(info.value) in (f"{model}: cannot write (No space left on device)",
+                               f"{model}.ckpt: cannot write (No space left on device)")
+    mf = load_model_file(model)
     assert mf.best["epoch"] == 1
     assert sorted(p.name for p in tmp_path.iterdir()) == ["model.pt", "model.pt.ckpt"]
