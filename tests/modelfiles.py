@@ -45,3 +45,18 @@ def write_model_file(path: Path, settings: Settings, **kw) -> Path:
     path = Path(path)
     save_atomic(model_dict(settings, **kw), path)
     return path
+
+
+def small_preset(folder: Path, **values) -> Path:
+    """presets/tiny.toml with some keys set (``width=32, depth=2`` by default), as a file in
+    ``folder``; each key must exist in the preset exactly once."""
+    import re
+
+    values = {"width": 32, "depth": 2} | values
+    text = (Path(__file__).resolve().parents[1] / "presets" / "tiny.toml").read_text("utf-8")
+    for key, value in values.items():
+        text, n = re.subn(rf"(?m)^{key}\s*=\s*[^#\n]*", f"{key} = {value!r} ", text)
+        assert n == 1, f"{key} appears {n} times in tiny.toml"
+    path = Path(folder) / "small.toml"
+    path.write_text(text, encoding="utf-8")
+    return path

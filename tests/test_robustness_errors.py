@@ -203,17 +203,17 @@ def test_nothing_was_written_by_the_failures(w):
     assert not (w["src"] / "bank").exists() and not (w["src"] / "r").exists()
 
 
-def test_debug_shows_the_traceback(w, tmp_path):
-    argv = ["generate", str(tmp_path / "none.pt"), "--out", str(tmp_path / "g")]
+def test_debug_shows_the_traceback(tmp_path):
+    argv = ["ingest", str(tmp_path / "none"), "--bank", str(tmp_path / "b")]
     plain = subprocess.run([sys.executable, "-m", "pipeline", *argv], capture_output=True,
                            text=True, timeout=120)
     assert plain.returncode == 1 and "Traceback" not in plain.stderr
-    assert plain.stderr.strip().splitlines() == [f"error: {tmp_path / 'none.pt'}: model file "
+    assert plain.stderr.strip().splitlines() == [f"error: {tmp_path / 'none'}: source folder "
                                                  "not found"]
     debug = subprocess.run([sys.executable, "-m", "pipeline", "--debug", *argv],
                            capture_output=True, text=True, timeout=120)
     assert debug.returncode == 1 and "Traceback" in debug.stderr
-    assert "ModelFileError" in debug.stderr
+    assert "ParameterError" in debug.stderr
 
 
 def test_a_foreign_manifest_in_out_is_not_replaced_without_overwrite(w, tmp_path):

@@ -3,7 +3,7 @@
 The promise under test: whatever stops a run, every model file and WAV at its final name is
 complete, the manifest lists exactly the WAVs present, earlier outputs are intact, and the
 user sees one line. ``SHOTSMITH_FAULT_LOOPS`` sets how many random kill / interrupt moments
-are tried (3 in CI).
+are tried (3 SIGKILLs and 1 SIGINT in CI).
 """
 
 from __future__ import annotations
@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 import soundfile as sf
 from badfiles import hit, tree_digest, wav_bytes
+from modelfiles import small_preset
 from typer.testing import CliRunner
 
 from pipeline.cli import app
@@ -28,18 +29,7 @@ from pipeline.config import load_settings
 from pipeline.errors import OutputError
 
 LOOPS = int(os.environ.get("SHOTSMITH_FAULT_LOOPS", "3"))
-PRESETS = Path(__file__).resolve().parents[1] / "presets"
 runner = CliRunner()
-
-
-def _small_preset(folder: Path) -> Path:
-    """tiny with a narrower network, so an epoch takes a fraction of a second."""
-    text = (PRESETS / "tiny.toml").read_text(encoding="utf-8")
-    text = text.replace("width = 128", "width = 32").replace("depth = 3", "depth = 2")
-    assert "width = 32" in text and "depth = 2" in text
-    path = folder / "small.toml"
-    path.write_text(text, encoding="utf-8")
-    return path
 
 
 def _cli(*args: str, **kw) -> subprocess.Popen:
@@ -64,7 +54,7 @@ def bank(tmp_path_factory):
     from synthbank import make_bank
 
     work = tmp_path_factory.mktemp("faults")
-    preset = _small_preset(work)
+    preset = small_preset(work, patience=1000)  # no early stop in the kill loop
     settings = load_settings(preset)
     return make_bank(work / "bank", settings.audio, per_family=4), preset
 
@@ -87,11 +77,11 @@ def test_sigkill_during_training_keeps_a_loadable_model_and_resume_works(bank, t
     kills, epochs_seen = 0, []
     for trial in range(LOOPS):
         proc = _cli(*args, *(["--resume"] if trial else []))
-        first_mtime = ckpt.stat().st_mtime_ns if ckpt.exists() else None
-        # wait for a checkpoint newer than the one we started from, then a random moment
-        assert _wait_for(lambda m=first_mtime: ckpt.exists() and ckpt.stat().st_mtime_ns != m,
-                         proc)
-        time.sleep(float(rng.uniform(0.0, 1.5)))
+        if trial == 0:  # the first run: wait for its first checkpoint, then a random moment
+            assert _wait_for(ckpt.exists, proc)
+            time.sleep(float(rng.uniform(0.0, 0.8)))  # an epoch takes about 0.7 s here
+        else:  # anywhere from loading the checkpoint to a few epochs on, saves included
+            time.sleep(float(rng.uniform(1.0, 6.0)))
         if proc.poll() is None:
             proc.send_signal(signal.SIGKILL)
             kills += 1
@@ -147,8 +137,8 @@ def _check_outputs(out: Path, *, complete: bool | None = None) -> list[str]:
 @pytest.mark.slow
 def test_ctrl_c_during_generate_leaves_whole_wavs_and_a_true_manifest(model_file, tmp_path):
     rng = np.random.default_rng(11)
-    interrupted = 0
-    for trial in range(LOOPS):
+    interrupted, trials = 0, max(1, LOOPS // 2)  # each start costs seconds (torch import)
+    for trial in range(trials):
         out = tmp_path / f"out{trial}"
         proc = _cli("generate", str(model_file), "--out", str(out), "-n", "2000", "--seed", "3")
         assert _wait_for(lambda o=out: (o / "manifest.json").exists(), proc)
@@ -160,7 +150,7 @@ def test_ctrl_c_during_generate_leaves_whole_wavs_and_a_true_manifest(model_file
         wavs = _check_outputs(out, complete=False)
         assert 0 < len(wavs) < 2000
         interrupted += 1
-    assert interrupted == LOOPS
+    assert interrupted == trials
 
 
 def test_keyboard_interrupt_from_the_progress_callback(model_file, tmp_path):

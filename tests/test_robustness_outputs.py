@@ -8,14 +8,13 @@ from pathlib import Path
 
 import pytest
 from badfiles import hit, tree_digest, wav_bytes
-from modelfiles import model_dict
+from modelfiles import model_dict, small_preset
 from typer.testing import CliRunner
 
 from pipeline.cli import app
 from pipeline.config import load_settings
 
 runner = CliRunner()
-PRESETS = Path(__file__).resolve().parents[1] / "presets"
 QUICK = ["--iterations", "2"]
 
 
@@ -27,10 +26,7 @@ def _ok(args: list[str]) -> None:
 @pytest.fixture(scope="module")
 def world(tmp_path_factory):
     root = tmp_path_factory.mktemp("flow")
-    text = (PRESETS / "tiny.toml").read_text(encoding="utf-8")
-    preset = root / "small.toml"
-    preset.write_text(text.replace("width = 128", "width = 32").replace("depth = 3", "depth = 2"),
-                      encoding="utf-8")
+    preset = small_preset(root)
     src = root / "library"
     for cat, f0 in (("kick", 70.0), ("hat", 3500.0)):
         (src / cat).mkdir(parents=True)
