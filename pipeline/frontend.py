@@ -123,6 +123,19 @@ def _libsndfile_reason(exc: Exception) -> str:
     return f"not a readable audio file: {msg[:120]}"
 
 
+def within_full_scale(data: np.ndarray) -> np.ndarray:
+    """Finite float samples scaled by an exact power of two so the peak is at most 1.
+
+    Float files may go far past full scale (up to about 3.4e38); summing channels or
+    resampling such values overflows to inf, and normalising inf gives NaN. A power-of-two
+    gain changes no mantissa, so the normalised clip is the same as without it.
+    """
+    big = float(np.max(np.abs(data))) if data.size else 0.0
+    if big <= 1.0:
+        return data
+    return data * np.float32(2.0 ** -math.ceil(math.log2(big)))
+
+
 def _read_needed(f: sf.SoundFile, spec: AudioSpec) -> tuple[np.ndarray, bool]:
     """Read what the clip can use: its length plus the onset search, never the whole file.
 
@@ -135,8 +148,8 @@ def _read_needed(f: sf.SoundFile, spec: AudioSpec) -> tuple[np.ndarray, bool]:
     if len(data) < first:
         return data, True
     # A late onset: read on until the clip after it is complete, and no further.
-    mono = mix_to_mono(data)
-    if np.all(np.isfinite(mono)):
+    if np.all(np.isfinite(data)):
+        mono = mix_to_mono(within_full_scale(data))
         want = onset_index(mono, onset_db=spec.onset_db) + need
         if want > len(data):
             more = f.read(want - len(data), dtype="float32", always_2d=True)
@@ -195,8 +208,9 @@ def decode_file(path: str | Path, spec: AudioSpec) -> tuple[np.ndarray, dict[str
         raise AudioError(
             f"silent: peak {shown} dBFS{where} (threshold {spec.silence_db:g} dBFS)"
         )
-    mono = mix_to_mono(data)
-    if peak_dbfs(mono) < spec.silence_db:
+    scaled = within_full_scale(data)
+    mono = mix_to_mono(scaled)
+    if peak_dbfs(mono) + (peak - peak_dbfs(scaled)) < spec.silence_db:  # in the file's scale
         raise AudioError(f"silent after mixing to mono{where}: the channels cancel out")
     clip = prepare_clip(mono, sr, spec)
     meta = {
