@@ -156,6 +156,13 @@ def build_corpus(root: Path, *, long_hours: float = 1.0) -> list[Case]:
     y[::7] = np.float32(1e-41)
     add("values/denormals sprinkled.wav", wav_bytes(y, sr, subtype="FLOAT"), CLIP,
         "a real sound with denormal samples between")
+    add("values/huge float.wav", wav_bytes(hit(44100) * 6e38, 44100, subtype="FLOAT"), CLIP,
+        "float samples near 3.4e38 (mixing or resampling them overflowed)")
+    add("values/huge float stereo.wav", wav_bytes(hit(16000, ch=2) * 6e38, 16000,
+        subtype="FLOAT"), CLIP, "two channels near 3.4e38")
+    y = np.stack([np.full(4000, np.inf), np.full(4000, -np.inf)], axis=1)
+    add("values/inf and minus inf.wav", wav_bytes(y, 16000, subtype="FLOAT"), "NaN or infinite",
+        "+inf and -inf channels (their mix is NaN)")
     add("values/dc only.wav", wav_bytes(np.full(4000, 0.5), sr), EITHER, "DC only")
     add("values/digital silence.wav", wav_bytes(np.zeros(4000), sr), "silent: peak -inf",
         "16-bit zeros")
