@@ -85,8 +85,10 @@ def test_sigkill_during_training_keeps_a_loadable_model_and_resume_works(bank, t
         if proc.poll() is None:
             proc.send_signal(signal.SIGKILL)
             kills += 1
-        proc.communicate(timeout=60)
+        out, err = proc.communicate(timeout=60)
         # The last complete files are there at their final names and load.
+        why = f"trial {trial}, exit {proc.returncode}: {out[-800:]} {err[-1500:]}"
+        assert ckpt.exists() and model.exists(), why
         mf = load_model_file(model)
         assert np.all(np.isfinite(mf.mu)) and len(mf.clip_names) == 24
         state, _ = read_archive(ckpt, kind="checkpoint")
