@@ -12,7 +12,7 @@ import os
 import sys
 from functools import wraps
 from pathlib import Path
-from typing import Annotated, Any, Optional
+from typing import Annotated, Any
 
 import typer
 
@@ -87,35 +87,42 @@ def _show_progress(as_json: bool) -> bool:
 # Options shared by several commands -------------------------------------------------------
 
 PresetOpt = Annotated[
-    str, typer.Option("--preset", help="Preset name from presets/ (tiny, drums, long) or a TOML file.")
+    str,
+    typer.Option("--preset", help="Preset: tiny, drums, long, or a TOML file."),
 ]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON summary object on stdout.")]
 OverwriteOpt = Annotated[
     bool, typer.Option("--overwrite", help="Replace existing output files of the same name.")
 ]
 IterOpt = Annotated[
-    Optional[int], typer.Option("--iterations", min=0, help="Fast Griffin-Lim iterations.")
+    int | None, typer.Option("--iterations", min=0, help="Fast Griffin-Lim iterations.")
 ]
 BitDepthOpt = Annotated[
-    Optional[str], typer.Option("--bit-depth", help="WAV sample format: 16, 24 or 32f.")
+    str | None, typer.Option("--bit-depth", help="WAV sample format: 16, 24 or 32f.")
 ]
 PeakOpt = Annotated[
-    Optional[float], typer.Option("--peak-db", max=0.0, help="Peak ceiling in dBFS (default -1).")
+    float | None, typer.Option("--peak-db", max=0.0, help="Peak ceiling in dBFS (default -1).")
 ]
 LoudOpt = Annotated[
-    Optional[float],
+    float | None,
     typer.Option("--loudness", max=0.0, help="Integrated loudness target in LUFS (BS.1770)."),
 ]
-SeedOpt = Annotated[Optional[int], typer.Option("--seed", help="Random seed (repeatable output).")]
+SeedOpt = Annotated[int | None, typer.Option("--seed", help="Random seed (repeatable output).")]
 JobsOpt = Annotated[
-    Optional[int], typer.Option("--jobs", min=1, help="Parallel decoding processes (default: all cores).")
+    int | None,
+    typer.Option("--jobs", min=1, help="Decoding processes (default: all cores)."),
 ]
 
 
 def _render_overrides(iterations, bit_depth, peak_db, loudness) -> dict[str, Any]:
     if bit_depth is not None and bit_depth not in ("16", "24", "32f"):
         raise typer.BadParameter(f"{bit_depth!r} must be 16, 24 or 32f", param_hint="--bit-depth")
-    return {"iterations": iterations, "bit_depth": bit_depth, "peak_db": peak_db, "loudness": loudness}
+    return {
+        "iterations": iterations,
+        "bit_depth": bit_depth,
+        "peak_db": peak_db,
+        "loudness": loudness,
+    }
 
 
 def _settings(preset: str, **tables: dict[str, Any]):
@@ -134,10 +141,10 @@ def ingest(
     bank: Annotated[Path, typer.Option("--bank", help="Bank folder to create or update.")],
     preset: PresetOpt = "drums",
     sample_rate: Annotated[
-        Optional[int], typer.Option("--sample-rate", help="Resample every file to this rate (Hz).")
+        int | None, typer.Option("--sample-rate", help="Resample every file to this rate (Hz).")
     ] = None,
     duration: Annotated[
-        Optional[float], typer.Option("--duration", help="Fit every clip to this length (s).")
+        float | None, typer.Option("--duration", help="Fit every clip to this length (s).")
     ] = None,
     jobs: JobsOpt = None,
     as_json: JsonOpt = False,
@@ -197,13 +204,13 @@ def train(
     bank: Annotated[Path, typer.Argument(help="Bank folder written by 'shotsmith ingest'.")],
     model: Annotated[Path, typer.Option("--model", help="Model file to write.")],
     preset: PresetOpt = "drums",
-    epochs: Annotated[Optional[int], typer.Option("--epochs", min=1, help="Maximum epochs.")] = None,
+    epochs: Annotated[int | None, typer.Option("--epochs", min=1, help="Maximum epochs.")] = None,
     latent_dim: Annotated[
-        Optional[int], typer.Option("--latent-dim", min=1, help="Size of the latent code.")
+        int | None, typer.Option("--latent-dim", min=1, help="Size of the latent code.")
     ] = None,
-    beta: Annotated[Optional[float], typer.Option("--beta", min=0.0, help="KL weight.")] = None,
+    beta: Annotated[float | None, typer.Option("--beta", min=0.0, help="KL weight.")] = None,
     seed: SeedOpt = None,
-    batch_size: Annotated[Optional[int], typer.Option("--batch-size", min=1)] = None,
+    batch_size: Annotated[int | None, typer.Option("--batch-size", min=1)] = None,
     resume: Annotated[
         bool, typer.Option("--resume", help="Continue an interrupted run from its checkpoint.")
     ] = False,
@@ -256,7 +263,7 @@ def generate(
         float, typer.Option("--temperature", min=0.0, help="Spread of the prior samples.")
     ] = 1.0,
     near: Annotated[
-        Optional[str], typer.Option("--near", help="Sample near this category of the library.")
+        str | None, typer.Option("--near", help="Sample near this category of the library.")
     ] = None,
     seed: SeedOpt = None,
     iterations: IterOpt = None,
@@ -290,14 +297,14 @@ def generate(
 def interpolate(
     model: Annotated[Path, typer.Argument(help="Model file.")],
     waypoints: Annotated[
-        Optional[list[str]],
+        list[str] | None,
         typer.Argument(help="Two or more clip names (or audio files) to pass through, in order."),
     ] = None,
     out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("."),
     steps: Annotated[int, typer.Option("--steps", min=2, help="Sounds along the path.")] = 8,
     path: Annotated[str, typer.Option("--path", help="slerp (default) or lerp.")] = "slerp",
     jobs_file: Annotated[
-        Optional[Path],
+        Path | None,
         typer.Option("--jobs-file", help="CSV or TOML file of many interpolations to render."),
     ] = None,
     seed: SeedOpt = None,
@@ -336,7 +343,8 @@ def vary(
     out: Annotated[Path, typer.Option("--out", help="Output folder.")],
     n: Annotated[int, typer.Option("-n", "--count", min=1, help="How many variations.")] = 8,
     amount: Annotated[
-        float, typer.Option("--amount", min=0.0, help="Spread around the sound; 0 = its reconstruction.")
+        float,
+        typer.Option("--amount", min=0.0, help="Spread; 0 = its reconstruction."),
     ] = 1.0,
     seed: SeedOpt = None,
     iterations: IterOpt = None,
@@ -371,7 +379,7 @@ def inspect(
     model: Annotated[Path, typer.Argument(help="Model file.")],
     out: Annotated[Path, typer.Option("--out", help="Folder for the figures and health.json.")],
     bank: Annotated[
-        Optional[Path], typer.Option("--bank", help="The bank it was trained on (audio checks).")
+        Path | None, typer.Option("--bank", help="The bank it was trained on (audio checks).")
     ] = None,
     seed: SeedOpt = None,
     overwrite: OverwriteOpt = False,
@@ -387,16 +395,16 @@ def inspect(
 @app.command()
 @_friendly
 def demo(
-    out: Annotated[Path, typer.Option("--out", help="Folder for everything the demo writes.")] = Path(
-        "shotsmith-demo"
-    ),
+    out: Annotated[
+        Path, typer.Option("--out", help="Folder for everything the demo writes.")
+    ] = Path("shotsmith-demo"),
     epochs: Annotated[
-        Optional[int], typer.Option("--epochs", min=1, help="Training epochs (default: the preset's).")
+        int | None, typer.Option("--epochs", min=1, help="Training epochs (default: the preset's).")
     ] = None,
     overwrite: OverwriteOpt = False,
     as_json: JsonOpt = False,
 ) -> None:
-    """The whole job on the bundled demo kit: ingest, train, generate, interpolate, vary, inspect."""
+    """The whole job on the demo kit: ingest, train, generate, interpolate, vary, inspect."""
     from pipeline.demo_run import format_demo_summary, run_demo
 
     s = run_demo(out, epochs=epochs, overwrite=overwrite, progress=_show_progress(as_json))

@@ -58,7 +58,10 @@ class AudioSpec:
         if self.n_fft < 64 or self.n_fft % 2:
             _fail(f"{w}.n_fft", f"{self.n_fft} must be an even number of at least 64")
         if self.hop_length < 1 or self.n_fft % self.hop_length or self.n_fft // self.hop_length < 2:
-            _fail(f"{w}.hop_length", f"{self.hop_length} must divide n_fft={self.n_fft} at least twice")
+            _fail(
+                f"{w}.hop_length",
+                f"{self.hop_length} must divide n_fft={self.n_fft} at least twice",
+            )
         if self.window != "hann":
             _fail(f"{w}.window", f"{self.window!r} is not supported (only 'hann')")
         if not self.db_floor < self.db_ceiling:
@@ -72,7 +75,9 @@ class AudioSpec:
         if self.spectra_dtype not in ("float16", "float32"):
             _fail(f"{w}.spectra_dtype", f"{self.spectra_dtype!r} must be 'float16' or 'float32'")
         if self.n_samples < self.n_fft:
-            _fail(f"{w}.duration", f"{self.duration} s is shorter than one n_fft={self.n_fft} window")
+            _fail(
+                f"{w}.duration", f"{self.duration} s is shorter than one n_fft={self.n_fft} window"
+            )
 
     @property
     def n_samples(self) -> int:
@@ -165,7 +170,9 @@ class RenderSpec:
         if not 0 <= self.momentum <= 1.5:
             _fail("render.momentum", f"{self.momentum} must be between 0 and 1.5")
         if self.phase_init not in PHASE_INITS:
-            _fail("render.phase_init", f"{self.phase_init!r} must be one of {', '.join(PHASE_INITS)}")
+            _fail(
+                "render.phase_init", f"{self.phase_init!r} must be one of {', '.join(PHASE_INITS)}"
+            )
         if self.bit_depth not in BIT_DEPTHS:
             _fail("render.bit_depth", f"{self.bit_depth!r} must be one of {', '.join(BIT_DEPTHS)}")
         if not -60 <= self.peak_db <= 0:

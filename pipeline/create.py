@@ -170,10 +170,22 @@ def generate_sounds(
         {"stem": f"generate-{i:04d}", "kind": "generate", "seed": seed + i, "sources": sources}
         for i in range(n)
     ]
-    request = {"command": "generate", "n": n, "temperature": temperature, "near": near,
-               "seed": seed}
+    request = {
+        "command": "generate",
+        "n": n,
+        "temperature": temperature,
+        "near": near,
+        "seed": seed,
+    }
     return _render(
-        mf, Z, items, out, seed=seed, render=render, overwrite=overwrite, progress=progress,
+        mf,
+        Z,
+        items,
+        out,
+        seed=seed,
+        render=render,
+        overwrite=overwrite,
+        progress=progress,
         summary=request,
     )
 
@@ -221,10 +233,22 @@ def interpolate_sounds(
     seed = _seed(seed)
     points = [resolve_sound(mf, w) for w in waypoints]
     Z, items = _path_items(points, steps, path, seed)
-    request = {"command": "interpolate", "waypoints": list(waypoints), "steps": steps,
-               "path": path, "seed": seed}
+    request = {
+        "command": "interpolate",
+        "waypoints": list(waypoints),
+        "steps": steps,
+        "path": path,
+        "seed": seed,
+    }
     return _render(
-        mf, Z, items, out, seed=seed, render=render, overwrite=overwrite, progress=progress,
+        mf,
+        Z,
+        items,
+        out,
+        seed=seed,
+        render=render,
+        overwrite=overwrite,
+        progress=progress,
         summary=request,
     )
 
@@ -249,7 +273,7 @@ def read_jobs_file(path: Path) -> list[dict[str, Any]]:
             raise ShotsmithError(f"{path}: not valid TOML ({exc})") from None
         for k, job in enumerate(data.get("job", []), 1):
             if not isinstance(job, dict) or not isinstance(job.get("sounds"), list):
-                raise ShotsmithError(f"{path}: job {k} needs sounds = [\"A\", \"B\", ...]")
+                raise ShotsmithError(f'{path}: job {k} needs sounds = ["A", "B", ...]')
             unknown = set(job) - {"sounds", "steps", "path", "label"}
             if unknown:
                 raise ShotsmithError(f"{path}: job {k}: unknown key {sorted(unknown)[0]!r}")
@@ -312,11 +336,22 @@ def interpolate_jobs(
             raise ShotsmithError(f"{job['where']}: {exc}") from None
         codes.append(Z)
         items.extend(its)
-    request = {"command": "interpolate", "jobs_file": str(jobs_file), "jobs": len(jobs),
-               "seed": seed}
+    request = {
+        "command": "interpolate",
+        "jobs_file": str(jobs_file),
+        "jobs": len(jobs),
+        "seed": seed,
+    }
     return _render(
-        mf, np.concatenate(codes), items, out, seed=seed, render=render, overwrite=overwrite,
-        progress=progress, summary=request,
+        mf,
+        np.concatenate(codes),
+        items,
+        out,
+        seed=seed,
+        render=render,
+        overwrite=overwrite,
+        progress=progress,
+        summary=request,
     )
 
 
@@ -341,12 +376,24 @@ def vary_sound(
     Z = latent.variations(point.mu, point.logvar, n, amount=amount, rng=np.random.default_rng(seed))
     src = [point.source.get("clip") or point.source.get("file")]
     items = [
-        {"stem": f"vary-{point.label}-{i:02d}", "kind": "vary", "seed": seed + i, "sources": src,
-         "amount": amount}
+        {
+            "stem": f"vary-{point.label}-{i:02d}",
+            "kind": "vary",
+            "seed": seed + i,
+            "sources": src,
+            "amount": amount,
+        }
         for i in range(n)
     ]
     request = {"command": "vary", "sound": sound, "n": n, "amount": amount, "seed": seed}
     return _render(
-        mf, Z, items, out, seed=seed, render=render, overwrite=overwrite, progress=progress,
+        mf,
+        Z,
+        items,
+        out,
+        seed=seed,
+        render=render,
+        overwrite=overwrite,
+        progress=progress,
         summary=request,
     )

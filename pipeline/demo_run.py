@@ -81,8 +81,15 @@ def run_demo(
     paths = []
     for a, b in _pick_pairs(mf):
         paths.append(
-            step("interpolate", interpolate_sounds, model, [a, b],
-                 out / "interpolations" / f"{a}-to-{b}", steps=8, **common)
+            step(
+                "interpolate",
+                interpolate_sounds,
+                model,
+                [a, b],
+                out / "interpolations" / f"{a}-to-{b}",
+                steps=8,
+                **common,
+            )
         )
     favourite = _pick_pairs(mf)[0][0]
     var = step("vary", vary_sound, model, favourite, out / "variations", n=8, amount=0.5, **common)

@@ -39,7 +39,16 @@ def test_python_dash_m_runs_the_same_app():
         [sys.executable, "-m", "pipeline", "--help"], capture_output=True, text=True
     )
     assert out.returncode == 0
-    for command in ("ingest", "resynth", "train", "generate", "interpolate", "vary", "inspect", "demo"):
+    for command in (
+        "ingest",
+        "resynth",
+        "train",
+        "generate",
+        "interpolate",
+        "vary",
+        "inspect",
+        "demo",
+    ):
         assert command in out.stdout
 
 
@@ -69,7 +78,9 @@ def test_usage_error_is_exit_2(tmp_path):
 
 
 def test_missing_model_file_is_one_line_exit_1(tmp_path):
-    result = runner.invoke(app, ["generate", str(tmp_path / "none.pt"), "--out", str(tmp_path / "o")])
+    result = runner.invoke(
+        app, ["generate", str(tmp_path / "none.pt"), "--out", str(tmp_path / "o")]
+    )
     assert result.exit_code == 1
     assert result.output.startswith("error: ") and "none.pt" in result.output
     assert "Traceback" not in result.output

@@ -118,7 +118,9 @@ def test_same_seed_writes_identical_wavs(model, tmp_path):
         digests.append([hashlib.sha256(f.read_bytes()).hexdigest() for f in _files(tmp_path / run)])
     assert digests[0] == digests[1]
     generate_sounds(model, tmp_path / "c", n=3, seed=43)
-    assert [hashlib.sha256(f.read_bytes()).hexdigest() for f in _files(tmp_path / "c")] != digests[0]
+    assert [hashlib.sha256(f.read_bytes()).hexdigest() for f in _files(tmp_path / "c")] != digests[
+        0
+    ]
 
 
 def test_amount_zero_is_the_reconstruction(model):
@@ -194,8 +196,9 @@ def test_jobs_file_csv_and_toml(model, tmp_path):
     from pipeline.create import interpolate_jobs
 
     csv_file = tmp_path / "night.csv"
-    csv_file.write_text("start,end,via,steps,path,label\nkick_00,hat_00,,3,lerp,\n"
-                        "kick_02,hat_03,kick_04,4,,tour\n")
+    csv_file.write_text(
+        "start,end,via,steps,path,label\nkick_00,hat_00,,3,lerp,\nkick_02,hat_03,kick_04,4,,tour\n"
+    )
     s = interpolate_jobs(model, csv_file, tmp_path / "csv", seed=0)
     assert s["written"] == 7
     assert (tmp_path / "csv" / "tour-03.wav").is_file()
@@ -223,8 +226,23 @@ def test_existing_outputs_are_not_overwritten(model, tmp_path):
 def test_cli_generate_json_and_render_options(model, tmp_path):
     result = CliRunner().invoke(
         app,
-        ["generate", str(model), "--out", str(tmp_path / "cli"), "-n", "2", "--seed", "1",
-         "--bit-depth", "16", "--peak-db", "-6", "--iterations", "8", "--json"],
+        [
+            "generate",
+            str(model),
+            "--out",
+            str(tmp_path / "cli"),
+            "-n",
+            "2",
+            "--seed",
+            "1",
+            "--bit-depth",
+            "16",
+            "--peak-db",
+            "-6",
+            "--iterations",
+            "8",
+            "--json",
+        ],
     )
     assert result.exit_code == 0, result.output
     s = json.loads(result.output)

@@ -53,8 +53,9 @@ def main() -> None:
         mf = load_model_file(model)
 
         t0 = time.perf_counter()
-        generate_sounds(model, tmp / "gen", n=args.n, seed=0,
-                        render={"iterations": render.iterations})
+        generate_sounds(
+            model, tmp / "gen", n=args.n, seed=0, render={"iterations": render.iterations}
+        )
         total = time.perf_counter() - t0
 
         Z = latent.sample_prior(args.n, mf.mu.shape[1], rng=0)
@@ -67,34 +68,51 @@ def main() -> None:
             stage["decode"] += time.perf_counter() - t
             t = time.perf_counter()
             S = spectra.unit_to_magnitude(U, audio)
-            y = griffin_lim(S, n_fft=audio.n_fft, hop_length=audio.hop_length,
-                            length=audio.n_samples, n_iter=render.iterations,
-                            momentum=render.momentum, init=render.phase_init, seed=s)
+            y = griffin_lim(
+                S,
+                n_fft=audio.n_fft,
+                hop_length=audio.hop_length,
+                length=audio.n_samples,
+                n_iter=render.iterations,
+                momentum=render.momentum,
+                init=render.phase_init,
+                seed=s,
+            )
             stage["phase"] += time.perf_counter() - t
             t = time.perf_counter()
             spectra.spectral_convergence_db(
-                S, spectra.magnitude(y.astype(np.float64), n_fft=audio.n_fft,
-                                     hop_length=audio.hop_length))
+                S,
+                spectra.magnitude(
+                    y.astype(np.float64), n_fft=audio.n_fft, hop_length=audio.hop_length
+                ),
+            )
             stage["measure"] += time.perf_counter() - t
             t = time.perf_counter()
             for j, yj in enumerate(y):
                 fin, _ = finish_audio(yj, audio.sample_rate, render, rng=np.random.default_rng(j))
-                write_wav(out / f"x-{s + j:04d}.wav", fin, audio.sample_rate,
-                          bit_depth=render.bit_depth)
+                write_wav(
+                    out / f"x-{s + j:04d}.wav", fin, audio.sample_rate, bit_depth=render.bit_depth
+                )
             stage["write"] += time.perf_counter() - t
 
     seconds = args.n * audio.duration
     cores = len(os.sched_getaffinity(0))
-    print(f"generate -n {args.n}, preset drums ({audio.sample_rate} Hz, {audio.duration} s, "
-          f"n_fft {audio.n_fft}, {render.iterations} Griffin-Lim iterations), {cores} cores, "
-          f"load average {os.getloadavg()[0]:.2f}")
+    print(
+        f"generate -n {args.n}, preset drums ({audio.sample_rate} Hz, {audio.duration} s, "
+        f"n_fft {audio.n_fft}, {render.iterations} Griffin-Lim iterations), {cores} cores, "
+        f"load average {os.getloadavg()[0]:.2f}"
+    )
     print(f"  whole command        {total:7.2f} s   {seconds / total:7.1f} s of audio per second")
     parts = sum(stage.values())
     for name, t in stage.items():
-        print(f"  {name:<20} {t:7.2f} s   {seconds / t:7.1f} s of audio per second "
-              f"({100 * t / parts:4.1f} % of the stages)")
-    print(f"  stages together      {parts:7.2f} s   (the rest of the command: model load, "
-          f"nearest clips, manifest: {total - parts:+.2f} s)")
+        print(
+            f"  {name:<20} {t:7.2f} s   {seconds / t:7.1f} s of audio per second "
+            f"({100 * t / parts:4.1f} % of the stages)"
+        )
+    print(
+        f"  stages together      {parts:7.2f} s   (the rest of the command: model load, "
+        f"nearest clips, manifest: {total - parts:+.2f} s)"
+    )
 
 
 if __name__ == "__main__":
