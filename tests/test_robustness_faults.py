@@ -14,6 +14,7 @@ import os
 import signal
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -49,26 +50,37 @@ def _wait_for(pred, proc: subprocess.Popen, timeout: float = 90.0) -> bool:
     return False
 
 
+@pytest.fixture
+def own_tmp():
+    """A private temporary folder. The long subprocess tests below outlive other pytest
+    sessions on a shared machine, and pytest prunes all but its three newest basetemp
+    folders, so tmp_path could vanish under a running trial."""
+    with tempfile.TemporaryDirectory(prefix="shotsmith-faults-") as d:
+        yield Path(d)
+
+
 @pytest.fixture(scope="module")
-def bank(tmp_path_factory):
+def bank():
     from synthbank import make_bank
 
-    work = tmp_path_factory.mktemp("faults")
+    holder = tempfile.TemporaryDirectory(prefix="shotsmith-faults-bank-")
+    work = Path(holder.name)
     preset = small_preset(work, patience=1000)  # no early stop in the kill loop
     settings = load_settings(preset)
-    return make_bank(work / "bank", settings.audio, per_family=4), preset
+    yield make_bank(work / "bank", settings.audio, per_family=4), preset
+    holder.cleanup()
 
 
 # --- training killed -------------------------------------------------------------------------
 
 
 @pytest.mark.slow
-def test_sigkill_during_training_keeps_a_loadable_model_and_resume_works(bank, tmp_path):
+def test_sigkill_during_training_keeps_a_loadable_model_and_resume_works(bank, own_tmp):
     from pipeline.modelfile import load_model_file, read_archive
     from pipeline.train import checkpoint_path
 
     bank_dir, preset = bank
-    model = tmp_path / "model.pt"
+    model = own_tmp / "model.pt"
     ckpt = checkpoint_path(model)
     args = ["train", str(bank_dir), "--model", str(model), "--preset", str(preset),
             "--epochs", "400", "--latent-dim", "4", "--seed", "1"]  # never ends by itself here
@@ -112,12 +124,12 @@ def test_sigkill_during_training_keeps_a_loadable_model_and_resume_works(bank, t
 
 
 @pytest.fixture(scope="module")
-def model_file(tmp_path_factory, bank):
+def model_file(bank):
     from modelfiles import write_model_file
 
     _, preset = bank
     settings = load_settings(preset, {"render": {"batch_size": 4, "iterations": 48}})
-    return write_model_file(tmp_path_factory.mktemp("model") / "model.pt", settings)
+    return write_model_file(bank[0].parent / "model.pt", settings)
 
 
 def _check_outputs(out: Path, *, complete: bool | None = None) -> list[str]:
@@ -137,11 +149,11 @@ def _check_outputs(out: Path, *, complete: bool | None = None) -> list[str]:
 
 
 @pytest.mark.slow
-def test_ctrl_c_during_generate_leaves_whole_wavs_and_a_true_manifest(model_file, tmp_path):
+def test_ctrl_c_during_generate_leaves_whole_wavs_and_a_true_manifest(model_file, own_tmp):
     rng = np.random.default_rng(11)
     interrupted, trials = 0, max(1, LOOPS // 2)  # each start costs seconds (torch import)
     for trial in range(trials):
-        out = tmp_path / f"out{trial}"
+        out = own_tmp / f"out{trial}"
         proc = _cli("generate", str(model_file), "--out", str(out), "-n", "2000", "--seed", "3")
         assert _wait_for(lambda o=out: (o / "manifest.json").exists(), proc)
         time.sleep(float(rng.uniform(0.0, 1.0)))
