@@ -215,6 +215,9 @@ def train(
         bool, typer.Option("--resume", help="Continue an interrupted run from its checkpoint.")
     ] = False,
     device: Annotated[str, typer.Option("--device", help="auto, cpu or cuda.")] = "auto",
+    overwrite: Annotated[
+        bool, typer.Option("--overwrite", help="Replace an existing model file and checkpoint.")
+    ] = False,
     as_json: JsonOpt = False,
 ) -> None:
     """Train a VAE on a bank; writes one self-contained model file."""
@@ -239,7 +242,13 @@ def train(
             )
 
         summary = train_model(
-            bank, model, settings, resume=resume, progress=on_epoch, device=device
+            bank,
+            model,
+            settings,
+            resume=resume,
+            progress=on_epoch,
+            device=device,
+            overwrite=overwrite,
         )
     s = summary.to_dict()
     human = (

@@ -73,7 +73,9 @@ def run_demo(
 
     t0 = time.perf_counter()
     with progress_bar("train", enabled=progress) as bar:
-        trained = train_model(out / "bank", model, settings, progress=on_epoch(bar))
+        trained = train_model(
+            out / "bank", model, settings, progress=on_epoch(bar), overwrite=overwrite
+        )
     timings["train"] = round(time.perf_counter() - t0, 2)
     mf = load_model_file(model)
     common = {"overwrite": overwrite, "seed": 1}

@@ -91,3 +91,37 @@ def test_bad_bit_depth_is_usage_error(tmp_path):
         app, ["resynth", str(tmp_path), "--out", str(tmp_path / "o"), "--bit-depth", "12"]
     )
     assert result.exit_code == 2
+
+
+def test_train_refuses_then_overwrites_an_existing_model(tmp_path):
+    import numpy as np
+
+    from pipeline.bank import BankWriter
+    from pipeline.config import load_settings
+
+    settings = load_settings("tiny")
+    a = settings.audio
+    writer = BankWriter(tmp_path / "bank", a, 6)
+    rng = np.random.default_rng(0)
+    for i in range(6):
+        writer.put(i, rng.random((a.n_bins, a.n_frames), dtype=np.float32))
+    clips = [{"name": f"c{i}", "path": f"c{i}.wav", "category": None} for i in range(6)]
+    writer.commit(clips, settings.to_dict(), {"accepted": 6})
+    model = tmp_path / "m.pt"
+    model.write_bytes(b"an earlier model")
+    args = [
+        "train",
+        str(tmp_path / "bank"),
+        "--model",
+        str(model),
+        "--preset",
+        "tiny",
+        "--epochs",
+        "1",
+    ]
+    refused = runner.invoke(app, args)
+    assert refused.exit_code == 1 and "--overwrite" in refused.output
+    assert model.read_bytes() == b"an earlier model"
+    done = runner.invoke(app, [*args, "--overwrite", "--json"])
+    assert done.exit_code == 0, done.output
+    assert model.read_bytes() != b"an earlier model"
