@@ -46,7 +46,11 @@ KEEP_BUFFERS = {"MALLOC_MMAP_THRESHOLD_": str(32 * 2**20), "MALLOC_TRIM_THRESHOL
 
 def _usage() -> dict:
     r = resource.getrusage(resource.RUSAGE_SELF)
-    return {"maxrss_mb": r.ru_maxrss / 1024, "minflt": r.ru_minflt}
+    return {"maxrss_mb": r.ru_maxrss / 1024, "minflt": r.ru_minflt, "cpu": r.ru_utime + r.ru_stime}
+
+
+def _threads() -> int:
+    return int(os.environ.get("OMP_NUM_THREADS", "2"))
 
 
 # ---------------------------------------------------------------- the baseline
@@ -118,7 +122,7 @@ def worker_loop(kind: str, bank: str, steps: int, batch: int, bins: int | None) 
     t0 = 0.0
     for i in range(steps + 3):
         if i == 3:
-            t0, f0 = time.perf_counter(), _usage()["minflt"]
+            t0, u0 = time.perf_counter(), _usage()
         x = X[rng.choice(len(X), batch, replace=False)]
         x_hat, mu, logvar, _ = model(x)
         loss, _, _ = vae_loss(x_hat, x, mu, logvar, kl_weight=1.0,
@@ -130,8 +134,9 @@ def worker_loop(kind: str, bank: str, steps: int, batch: int, bins: int | None) 
     after = _usage()
     return {"clips_per_second": steps * batch / secs, "params": sum(p.numel() for p in
             model.parameters()), "rss_before_mb": before["maxrss_mb"],
-            "maxrss_mb": after["maxrss_mb"], "faults_per_clip": (after["minflt"] - f0) /
-            (steps * batch), "shape": [int(n_bins), int(n_frames)], "batch": batch}
+            "maxrss_mb": after["maxrss_mb"], "faults_per_clip": (after["minflt"] - u0["minflt"]) /
+            (steps * batch), "cpu_rate": steps * batch * _threads() / (after["cpu"] - u0["cpu"]),
+            "shape": [int(n_bins), int(n_frames)], "batch": batch}
 
 
 def worker_train(bank: str, epochs: int, preset: str) -> dict:
@@ -149,7 +154,9 @@ def worker_train(bank: str, epochs: int, preset: str) -> dict:
                                  "best_val_rms_db", "seconds", "parameters", "threads")},
             "rss_before_mb": before["maxrss_mb"], "maxrss_mb": after["maxrss_mb"],
             "faults_per_clip": (after["minflt"] - before["minflt"]) /
-            (s["train_clips_per_second"] * s["seconds"] or 1)}
+            (s["clips_per_second"] * s["seconds"] or 1),
+            "cpu_rate": s["clips_per_second"] * s["seconds"] * _threads() /
+            (after["cpu"] - before["cpu"])}
 
 
 def worker_demo(kit: str, work: str) -> dict:
@@ -216,6 +223,8 @@ def main() -> None:
     ap.add_argument("--clips", type=int, default=400)
     ap.add_argument("--repeats", type=int, default=2, help="fresh processes per row (best kept)")
     ap.add_argument("--skip-demo", action="store_true")
+    ap.add_argument("--presets", default="tiny,drums", help="comma-separated")
+    ap.add_argument("--skip-alloc", action="store_true", help="no allocator variants")
     ap.add_argument("--worker", nargs="+", help=argparse.SUPPRESS)
     a = ap.parse_args()
     if a.worker:
@@ -247,45 +256,58 @@ def main() -> None:
         banks = build_banks(Path(tmp), a.clips)
         rows: dict[str, dict] = {}
 
-        def measure(label: str, args: list[str], env: dict | None = None, extra=None) -> dict:
-            runs = [run(args, threads=a.threads, env=env) for _ in range(reps)]
+        def show(label: str, runs: list[dict], note: str = "") -> dict:
             r = max(runs, key=lambda x: x["clips_per_second"])
-            r["spread"] = [min(x["clips_per_second"] for x in runs),
-                           max(x["clips_per_second"] for x in runs)]
+            r["spread"] = [min(x["clips_per_second"] for x in runs), r["clips_per_second"]]
             rows[label] = r
-            note = extra(r) if extra else ""
             print(f"{label:36s} {r['clips_per_second']:6.0f} clips/s "
                   f"({r['spread'][0]:.0f}-{r['spread'][1]:.0f})  peak {r['maxrss_mb']:5.0f} MB "
                   f"(setup {r.get('rss_before_mb', 0):4.0f})  "
-                  f"{r.get('faults_per_clip', 0):7.1f} faults/clip  load "
+                  f"{r.get('faults_per_clip', 0):7.1f} faults/clip  "
+                  f"{r['cpu_rate']:5.0f} per {a.threads} CPU-s  load "
                   f"{os.getloadavg()[0]:.1f}  {note}", flush=True)
             return r
 
-        for preset in ("tiny", "drums"):
+        def pair(label_a, args_a, label_b, args_b, env, note, env_b=None) -> None:
+            # interleaved, so both see the same load; the ratio is the median of the pairs
+            runs_a, runs_b = [], []
+            for _ in range(reps):
+                runs_a.append(run(args_a, threads=a.threads, env=env))
+                runs_b.append(run(args_b, threads=a.threads, env=env_b or env))
+            ratio = float(np.median([x["clips_per_second"] / y["clips_per_second"]
+                                     for x, y in zip(runs_a, runs_b)]))
+            ra = show(label_a, runs_a, note(runs_a[0]))
+            show(label_b, runs_b, f"{note(runs_b[0])}; first/second {ratio:.2f}x (median)")
+            ra["ratio"] = ratio
+
+        params = lambda r: f"{r['params'] / 1e6:.2f} M params"  # noqa: E731
+        for preset in a.presets.split(","):
             b = str(banks[preset])
-            for name, env in allocs.items():
-                ours = measure(f"{preset} ours b{batch[preset]}{name}",
-                               ["ours", b, str(steps), str(batch[preset])], env,
-                               lambda r: f"{r['params'] / 1e6:.2f} M params")
-                measure(f"{preset} conv2d b32{name}", ["conv2d", b, str(steps), "32"], env,
-                        lambda r, o=ours: f"{r['params'] / 1e6:.2f} M params; ours/conv2d "
-                        f"{o['clips_per_second'] / r['clips_per_second']:.2f}x")
-            for name, env in (("", None), (" keep (mallopt)", allocs[" keep (mallopt)"])):
-                measure(f"{preset} train_model {epochs} ep{name}",
-                        ["train", b, str(epochs), preset], env,
-                        lambda r: f"steps only {r['train_clips_per_second']:.0f} clips/s; "
-                        f"best val {r['best_val_loss']:.1f} = recon {r['best_val_recon']:.1f} + KL "
+            for name, env in list(allocs.items())[: 1 if a.skip_alloc else None]:
+                pair(f"{preset} ours b{batch[preset]}{name}",
+                     ["ours", b, str(steps), str(batch[preset])],
+                     f"{preset} conv2d b32{name}", ["conv2d", b, str(steps), "32"], env, params)
+
+            def trained(r):
+                return (f"steps only {r['train_clips_per_second']:.0f} clips/s; best val "
+                        f"{r['best_val_loss']:.1f} = recon {r['best_val_recon']:.1f} + KL "
                         f"{r['best_val_kl']:.1f}; {r['best_val_rms_db']:.2f} dB RMS")
-        measure("conv2d 128 x 87 b32 (anchor shape)",
-                ["conv2d", str(banks["drums"]), str(steps), "32", "128"], None,
-                lambda r: f"vs anchor 727: {r['clips_per_second'] / ANCHOR[(128, 87)]:.2f}x")
-        d, base = rows[f"drums train_model {epochs} ep"], rows["drums conv2d b32"]
-        print(f"# drums: {d['train_clips_per_second']:.0f} clips/s of training steps, "
-              f"{d['clips_per_second']:.0f} overall (target >= 200: "
-              f"{'met' if d['train_clips_per_second'] >= 200 else 'NOT met'}); conv2d here "
-              f"{base['clips_per_second']:.0f} vs anchor 139 "
-              f"({base['clips_per_second'] / ANCHOR[(513, 87)]:.2f}x); ours/conv2d "
-              f"{rows['drums ours b32']['clips_per_second'] / base['clips_per_second']:.2f}x")
+
+            pair(f"{preset} train_model {epochs} ep", ["train", b, str(epochs), preset],
+                 f"{preset} train_model {epochs} ep keep (mallopt)",
+                 ["train", b, str(epochs), preset], None, trained, allocs[" keep (mallopt)"])
+        runs = [run(["conv2d", str(banks["drums"]), str(steps), "32", "128"], threads=a.threads)
+                for _ in range(reps)]
+        show("conv2d 128 x 87 b32 (anchor shape)", runs,
+             f"vs anchor 727: {max(r['clips_per_second'] for r in runs) / 727:.2f}x")
+        d, base = rows.get(f"drums train_model {epochs} ep"), rows.get("drums conv2d b32")
+        if d and base:
+            print(f"# drums: {d['train_clips_per_second']:.0f} clips/s of training steps, "
+                  f"{d['clips_per_second']:.0f} overall (target >= 200: "
+                  f"{'met' if d['train_clips_per_second'] >= 200 else 'NOT met'}); conv2d here "
+                  f"{base['clips_per_second']:.0f} vs anchor 139 "
+                  f"({base['clips_per_second'] / ANCHOR[(513, 87)]:.2f}x); ours/conv2d "
+                  f"{rows['drums ours b32']['ratio']:.2f}x (median of interleaved pairs)")
 
         if not a.skip_demo:
             from pipeline.demo import find_kit, synthesize_kit
