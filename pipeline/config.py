@@ -9,6 +9,7 @@ The resolved settings are stored in the bank, the model file and every manifest.
 from __future__ import annotations
 
 import dataclasses
+import os
 import sys
 import typing
 from dataclasses import dataclass, field
@@ -24,6 +25,14 @@ else:  # pragma: no cover
 
 BIT_DEPTHS = ("16", "24", "32f")
 PHASE_INITS = ("random", "zeros")
+
+
+def available_cores() -> int:
+    """The cores this process may run on: the default for ``--jobs`` and training threads."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - not on Linux
+        return os.cpu_count() or 1
 
 
 def _fail(where: str, msg: str) -> None:

@@ -34,7 +34,7 @@ from pipeline.bank import (
     read_json,
     write_json_atomic,
 )
-from pipeline.config import AudioSpec, Settings
+from pipeline.config import AudioSpec, Settings, available_cores
 from pipeline.errors import AudioError, BankError, ParameterError, ShotsmithError
 from pipeline.frontend import (
     align_onset,
@@ -105,11 +105,8 @@ class IngestSummary:
 
 
 def default_jobs() -> int:
-    """The cores this process may run on."""
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # pragma: no cover - not on Linux
-        return os.cpu_count() or 1
+    """The cores this process may run on (the default for ``--jobs``)."""
+    return available_cores()
 
 
 def _check_paths(source: str | Path, bank_dir: str | Path) -> tuple[Path, Path]:

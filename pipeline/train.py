@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import ctypes
 import math
-import os
 import shlex
 import signal
 import threading
@@ -30,7 +29,7 @@ import numpy as np
 import torch
 
 from pipeline.bank import Bank, open_bank
-from pipeline.config import Settings
+from pipeline.config import Settings, available_cores
 from pipeline.dataset import (
     EpochSampler,
     SpectraDataset,
@@ -114,13 +113,6 @@ def pick_device(device: str) -> torch.device:
     if dev.type == "cuda" and not torch.cuda.is_available():
         raise ParameterError(f"device={device!r}: CUDA is not available here")
     return dev
-
-
-def _available_cores() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # pragma: no cover - not on Linux
-        return os.cpu_count() or 1
 
 
 def keep_freed_buffers() -> bool:
@@ -218,7 +210,7 @@ def train_model(
     for path in (model_path, ckpt_path):  # left by a run that was killed while saving
         remove_stale_temporaries(path)
     old_threads = torch.get_num_threads()
-    threads = _available_cores() if dev.type == "cpu" else old_threads
+    threads = available_cores() if dev.type == "cpu" else old_threads
     stop = interrupt if interrupt is not None else threading.Event()
     old_handler = None
     if interrupt is None and threading.current_thread() is threading.main_thread():
