@@ -307,7 +307,11 @@ def load_settings(
         raise PresetError(f"{path}: cannot read preset ({exc})") from None
     except tomllib.TOMLDecodeError as exc:
         raise PresetError(f"{path}: not valid TOML ({exc})") from None
-    return settings_from_dict(data, overrides, name=path.stem, where=str(path))
+    # a shipped preset is recorded by name, the user's own file by its path, so the
+    # recorded settings (and the resume command built from them) find it again
+    shipped = path.resolve().parent == presets_dir().resolve()
+    name = path.stem if shipped else str(path)
+    return settings_from_dict(data, overrides, name=name, where=str(path))
 
 
 def settings_from_dict(

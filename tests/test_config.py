@@ -83,3 +83,10 @@ def test_round_trip_through_dict():
 def test_spec_properties():
     a = AudioSpec(sample_rate=16000, duration=0.5, n_fft=512, hop_length=128)
     assert (a.n_samples, a.n_bins, a.n_frames) == (8000, 257, 63)
+
+
+def test_own_preset_file_is_recorded_by_path(tmp_path):
+    p = tmp_path / "my kit.toml"
+    p.write_text("[audio]\nsample_rate = 16000\n")
+    assert load_settings(p).preset == str(p)  # so a resume command can find it again
+    assert load_settings("tiny").preset == "tiny"
