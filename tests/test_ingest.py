@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import subprocess
@@ -14,6 +13,7 @@ import numpy as np
 import pytest
 import scipy.signal
 import soundfile as sf
+from badfiles import tree_digest
 
 from pipeline import frontend
 from pipeline.bank import INDEX_FILE, REPORT_FILE, open_bank
@@ -46,20 +46,6 @@ def write(path: Path, y: np.ndarray, sr: int, **kw) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     sf.write(path, y, sr, **kw)
     return path
-
-
-def tree_digest(root: Path) -> str:
-    """Names, sizes, mtimes and contents of everything under ``root`` (links not followed)."""
-    h = hashlib.sha256()
-    for dirpath, dirnames, filenames in os.walk(root):
-        dirnames.sort()
-        for name in sorted(filenames + [d for d in dirnames if os.path.islink(Path(dirpath, d))]):
-            p = Path(dirpath, name)
-            st = os.lstat(p)
-            h.update(os.fsencode(p.relative_to(root)) + f"{st.st_size} {st.st_mtime_ns}".encode())
-            if p.is_file() and not p.is_symlink():
-                h.update(p.read_bytes())
-    return h.hexdigest()
 
 
 # --- pure functions ---------------------------------------------------------------------------
