@@ -26,7 +26,7 @@ import numpy as np
 from pipeline.config import AudioSpec, spec_from_dict
 from pipeline.errors import BankError, OutputError, PresetError
 
-BANK_FORMAT = 1
+BANK_FORMAT = 2  # 2: spectra analysed after AudioSpec.analysis_pad of silence
 SPECTRA_FILE = "spectra.npy"
 INDEX_FILE = "index.json"
 REPORT_FILE = "ingest-report.json"
@@ -213,11 +213,15 @@ def read_index(path: Path) -> dict[str, Any]:
     index = read_json(path / INDEX_FILE, "bank index")
     if not isinstance(index, dict) or index.get("tool") != "shotsmith" or "clips" not in index:
         raise BankError(f"{path / INDEX_FILE}: not a shotsmith bank index")
-    if index.get("format", 0) > BANK_FORMAT:
+    version = index.get("format", 0)
+    if not isinstance(version, int) or version > BANK_FORMAT:
         raise BankError(
-            f"{path / INDEX_FILE}: bank format {index['format']} is newer than this "
+            f"{path / INDEX_FILE}: bank format {version} is newer than this "
             f"shotsmith reads ({BANK_FORMAT}); upgrade shotsmith"
         )
+    if version < BANK_FORMAT:
+        raise BankError(f"{path}: bank format {version} was made by an older shotsmith "
+                        f"(this one reads {BANK_FORMAT}); re-run 'shotsmith ingest'")
     return index
 
 

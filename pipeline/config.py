@@ -24,7 +24,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 BIT_DEPTHS = ("16", "24", "32f")
-PHASE_INITS = ("random", "zeros")
+PHASE_INITS = ("pghi", "random", "zeros")
 
 
 def available_cores() -> int:
@@ -43,10 +43,10 @@ def _fail(where: str, msg: str) -> None:
 class AudioSpec:
     """The audio front end and the spectrogram scale; fixes the model's input shape."""
 
-    sample_rate: int = 22050
+    sample_rate: int = 44100
     duration: float = 1.0  # seconds every clip is fitted to
-    n_fft: int = 1024
-    hop_length: int = 256  # n_fft / 4: Hann COLA/NOLA
+    n_fft: int = 2048
+    hop_length: int = 512  # n_fft / 4: Hann COLA/NOLA
     window: str = "hann"
     db_floor: float = -100.0  # absolute dB scale mapped to [0, 1]
     db_ceiling: float = 0.0  # 0 dB = a full-scale bin-centred sine
@@ -97,9 +97,20 @@ class AudioSpec:
         return self.n_fft // 2 + 1
 
     @property
+    def analysis_pad(self) -> int:
+        """Silence put before every clip for analysis, trimmed after reconstruction.
+
+        At least n_fft / 2 (a whole number of hops): the attack then sits in frames whose
+        windows lie inside the signal, where phase reconstruction from magnitudes works
+        (measured: PGHI + 32 fast Griffin-Lim iterations on real hits, about 3 dB lower
+        spectral convergence than with the attack in the half-padded first frame).
+        """
+        return -(-(self.n_fft // 2) // self.hop_length) * self.hop_length
+
+    @property
     def n_frames(self) -> int:
-        # centred frames (librosa center=True): 1 + len // hop
-        return 1 + self.n_samples // self.hop_length
+        # centred frames (librosa center=True) of the padded clip: 1 + len // hop
+        return 1 + (self.n_samples + self.analysis_pad) // self.hop_length
 
 
 @dataclass(frozen=True)
@@ -165,13 +176,15 @@ class RenderSpec:
 
     iterations: int = 64  # fast Griffin-Lim iterations
     momentum: float = 0.99  # Perraudin et al. 2013
-    phase_init: str = "random"
+    phase_init: str = "pghi"  # Průša et al. 2017; "random" (seeded) or "zeros"
     bit_depth: str = "24"
-    peak_db: float = -1.0  # peak ceiling, dBFS
+    peak_db: float = -1.0  # true-peak ceiling, dBTP (EBU R 128: -1 dBTP)
     loudness: float | None = None  # integrated loudness target, LUFS (BS.1770); None = peak only
     fade_in_ms: float = 1.0
-    fade_out_ms: float = 20.0
+    fade_out_ms: float = 20.0  # fade to digital silence where the sound ends
     batch_size: int = 32  # clips decoded and phase-reconstructed together
+    trim: bool = False  # write each file only until its sound ends
+    output_rate: int | None = None  # WAV sample rate (soxr after reconstruction); None = analysis
 
     def __post_init__(self) -> None:
         if not 0 <= self.iterations <= 10000:
@@ -185,13 +198,15 @@ class RenderSpec:
         if self.bit_depth not in BIT_DEPTHS:
             _fail("render.bit_depth", f"{self.bit_depth!r} must be one of {', '.join(BIT_DEPTHS)}")
         if not -60 <= self.peak_db <= 0:
-            _fail("render.peak_db", f"{self.peak_db} must be between -60 and 0 dBFS")
+            _fail("render.peak_db", f"{self.peak_db} must be between -60 and 0 dBTP")
         if self.loudness is not None and not -70 <= self.loudness <= 0:
             _fail("render.loudness", f"{self.loudness} must be between -70 and 0 LUFS")
         if self.fade_in_ms < 0 or self.fade_out_ms < 0:
             _fail("render.fade_in_ms", "fades must not be negative")
         if self.batch_size < 1:
             _fail("render.batch_size", f"{self.batch_size} must be at least 1")
+        if self.output_rate is not None and not 8000 <= self.output_rate <= 192000:
+            _fail("render.output_rate", f"{self.output_rate} must be between 8000 and 192000 Hz")
 
 
 SPEC_TYPES: dict[str, type] = {

@@ -140,15 +140,16 @@ def _open_matching_bank(bank_path: Path, mf) -> Any:
 def _phase_section(S_ref: np.ndarray, S_dec: np.ndarray, sc_dec: np.ndarray, audio, render,
                    seed: int) -> dict[str, Any]:
     """Decoded magnitudes -> fast Griffin-Lim -> audio, measured against the originals."""
-    from pipeline.phase import griffin_lim
-    from pipeline.spectra import magnitude
+    from pipeline.phase import reconstruct
+    from pipeline.spectra import magnitude, pad_for_analysis
 
-    gl = dict(n_fft=audio.n_fft, hop_length=audio.hop_length, length=audio.n_samples,
-              n_iter=render.iterations, momentum=render.momentum, init=render.phase_init,
-              seed=seed)
-    mag = dict(n_fft=audio.n_fft, hop_length=audio.hop_length)
-    A_dec = magnitude(griffin_lim(S_dec, **gl), **mag).astype(np.float32)
-    A_ref = magnitude(griffin_lim(S_ref, **gl), **mag).astype(np.float32)
+    def heard(S: np.ndarray) -> np.ndarray:  # magnitudes of the audio a user would get
+        y, _ = reconstruct(S, audio, n_iter=render.iterations, momentum=render.momentum,
+                           init=render.phase_init, seed=seed)
+        return magnitude(pad_for_analysis(y, audio), n_fft=audio.n_fft,
+                         hop_length=audio.hop_length).astype(np.float32)
+
+    A_dec, A_ref = heard(S_dec), heard(S_ref)
     sc_p, lsd_p = _spectral_errors(S_ref, A_dec)  # the audio against the originals
     # Griffin-Lim on the originals (the resynthesis ceiling), and how consistent the
     # decoded spectra are (how closely any audio can have them) for comparison

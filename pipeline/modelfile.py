@@ -5,7 +5,7 @@ weights_only=True)`` reads: a dict of tensors and plain str/int/float/bool/None
 lists and dicts. Keys:
 
 ``format``, ``tool``, ``kind`` (``"model"``), ``version``
-    format version 1, ``"shotsmith"``, the writing shotsmith version.
+    format version 2, ``"shotsmith"``, the writing shotsmith version.
 ``settings``
     the resolved settings (``audio``, ``model``, ``train``, ``render`` tables, ``preset``).
 ``history``
@@ -49,7 +49,7 @@ from pipeline.errors import (
 )
 from pipeline.model import ShotVAE, build_model
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: spectra analysed after AudioSpec.analysis_pad of silence
 TOOL = "shotsmith"
 MODEL_KEYS = (
     "format",
@@ -171,6 +171,10 @@ def read_archive(path: Path, *, kind: str) -> tuple[dict[str, Any], str]:
             f"{path}: {what} format {version} is newer than this shotsmith reads "
             f"({FORMAT_VERSION}); upgrade shotsmith"
         )
+    if version < FORMAT_VERSION:
+        again = "train" if kind == "model" else "train without --resume"
+        raise ModelFileError(f"{path}: {what} format {version} was made by an older shotsmith "
+                             f"(this one reads {FORMAT_VERSION}); re-run 'shotsmith {again}'")
     if payload.get("kind") != kind:
         other = "a training checkpoint" if payload.get("kind") == "checkpoint" else "a model file"
         raise ModelFileError(f"{path}: is {other}, not a {what}")

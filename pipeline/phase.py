@@ -32,10 +32,11 @@ import scipy.fft
 
 from pipeline import spectra
 from pipeline.errors import ParameterError
+from pipeline.pghi import pghi_phase
 
-__all__ = ["griffin_lim", "griffin_lim_trace", "random_phase"]
+__all__ = ["griffin_lim", "griffin_lim_trace", "random_phase", "reconstruct"]
 
-INITS = ("random", "zeros")
+INITS = ("pghi", "random", "zeros")
 _CHUNK_BYTES = 1 << 20  # target size of one chunk's complex spectrogram buffer
 _EPS = np.float32(1e-30)  # added to |c| before dividing; S / 1e-30 stays finite in float32
 
@@ -212,8 +213,13 @@ def _run(S, *, n_fft, hop_length, length, n_iter, momentum, init, seed, jobs, tr
     def work(s: int) -> None:
         e = min(s + b, B)
         S_t = np.ascontiguousarray(S[s:e].transpose(0, 2, 1))  # (b, frames, bins)
-        if init == "random":
-            angles = random_phase(n_bins, n_frames, seed=seed, start=s, count=e - s)
+        if init in ("random", "pghi"):
+            if init == "random":
+                angles = random_phase(n_bins, n_frames, seed=seed, start=s, count=e - s)
+            else:
+                clip_seeds = (seed[s:e] if not isinstance(seed, (int, np.integer))
+                              else [int(seed) + i for i in range(s, e)])
+                angles = pghi_phase(S[s:e], n_fft=n_fft, hop_length=hop_length, seed=clip_seeds)
             angles = angles.transpose(0, 2, 1).astype(np.float32)
             C = np.empty(S_t.shape, np.complex64)
             np.cos(angles, out=C.real)  # float32 cos/sin: a complex128 exp cost 10 % of the run
@@ -246,7 +252,7 @@ def griffin_lim(
     length: int,
     n_iter: int = 32,
     momentum: float = 0.99,
-    init: str = "random",
+    init: str = "pghi",
     seed: int | Sequence[int] = 0,
     jobs: int | None = None,
 ) -> np.ndarray:
@@ -270,10 +276,12 @@ def griffin_lim(
         Iterations.
     momentum : float >= 0
         Fast Griffin-Lim extrapolation; above 1 warns (may not converge).
-    init : {"random", "zeros"}
-        Initial phase: seeded uniform random, or zero.
+    init : {"pghi", "random", "zeros"}
+        Initial phase: phase gradient heuristic integration (:mod:`pipeline.pghi`,
+        Průša et al. 2017), seeded uniform random, or zero.
     seed : int or sequence of int
-        One seed for the batch (see :func:`random_phase`) or one per spectrogram.
+        One seed for the batch (see :func:`random_phase`; with "pghi", clip ``i`` uses
+        ``seed + i`` for its quietest coefficients) or one per spectrogram.
     jobs : int, optional
         Worker threads; default all cores.
 
@@ -299,7 +307,7 @@ def griffin_lim_trace(
     length: int,
     n_iter: int = 32,
     momentum: float = 0.99,
-    init: str = "random",
+    init: str = "pghi",
     seed: int | Sequence[int] = 0,
     jobs: int | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -314,3 +322,32 @@ def griffin_lim_trace(
     """
     return _run(S, n_fft=n_fft, hop_length=hop_length, length=length, n_iter=n_iter,
                 momentum=momentum, init=init, seed=seed, jobs=jobs, track=True)
+
+
+def reconstruct(
+    S: np.ndarray, audio, *, n_iter: int, momentum: float = 0.99, init: str = "pghi",
+    seed: int | Sequence[int] = 0, jobs: int | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Clips from magnitudes made by :func:`pipeline.spectra.clip_to_unit`, pad removed.
+
+    Parameters
+    ----------
+    S : np.ndarray [shape=(B, audio.n_bins, audio.n_frames)]
+        Magnitudes of clips analysed after ``audio.analysis_pad`` samples of silence.
+    audio : AudioSpec
+    n_iter, momentum, init, seed, jobs : as :func:`griffin_lim`.
+
+    Returns
+    -------
+    y : np.ndarray [shape=(B, audio.n_samples)], float32; the attack at its first samples
+    sc_db : np.ndarray [shape=(B,)]
+        Spectral convergence (dB) of the padded reconstruction against ``S``.
+    """
+    pad = audio.analysis_pad
+    y, trace = _run(S, n_fft=audio.n_fft, hop_length=audio.hop_length,
+                    length=audio.n_samples + pad, n_iter=n_iter, momentum=momentum, init=init,
+                    seed=seed, jobs=jobs, track=False)
+    y = np.atleast_2d(y)
+    A = spectra.magnitude(y.astype(np.float64), n_fft=audio.n_fft, hop_length=audio.hop_length)
+    sc_db = spectra.spectral_convergence_db(np.atleast_3d(S).reshape(A.shape), A)
+    return np.ascontiguousarray(y[:, pad:]), sc_db

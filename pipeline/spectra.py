@@ -124,9 +124,21 @@ def unit_to_magnitude(U: np.ndarray, spec: AudioSpec) -> np.ndarray:
     return np.where(U <= 0.0, 0.0, S).astype(np.float32)
 
 
+def pad_for_analysis(y: np.ndarray, spec: AudioSpec) -> np.ndarray:
+    """``spec.analysis_pad`` zeros before a clip (or a batch ``(..., n)``)."""
+    y = np.asarray(y)
+    return np.pad(y, [(0, 0)] * (y.ndim - 1) + [(spec.analysis_pad, 0)])
+
+
 def clip_to_unit(y: np.ndarray, spec: AudioSpec) -> np.ndarray:
-    """A fitted clip (or a batch ``(..., n_samples)``) to its [0, 1] log-magnitude spectrogram."""
-    S = magnitude(np.asarray(y, dtype=np.float64), n_fft=spec.n_fft, hop_length=spec.hop_length)
+    """A fitted clip (or a batch ``(..., n_samples)``) to its [0, 1] log-magnitude spectrogram.
+
+    The clip is analysed after ``spec.analysis_pad`` samples of silence (see
+    :attr:`~pipeline.config.AudioSpec.analysis_pad`), so the spectrogram has
+    ``spec.n_frames`` frames; :func:`pipeline.phase.reconstruct` removes the pad again.
+    """
+    y = pad_for_analysis(np.asarray(y, dtype=np.float64), spec)
+    S = magnitude(y, n_fft=spec.n_fft, hop_length=spec.hop_length)
     return magnitude_to_unit(S, spec)
 
 

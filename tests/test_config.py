@@ -13,7 +13,10 @@ def test_shipped_presets_load(name):
     s = load_settings(name)
     assert s.preset == name
     assert s.audio.n_fft % s.audio.hop_length == 0
-    assert s.audio.n_frames == 1 + s.audio.n_samples // s.audio.hop_length
+    # centred frames of the clip after its analysis pad (at least n_fft / 2 of silence)
+    assert s.audio.analysis_pad >= s.audio.n_fft // 2
+    assert s.audio.analysis_pad % s.audio.hop_length == 0
+    assert s.audio.n_frames == 1 + (s.audio.n_samples + s.audio.analysis_pad) // s.audio.hop_length
 
 
 def test_presets_are_listed():
@@ -22,7 +25,8 @@ def test_presets_are_listed():
 
 def test_drums_shape_and_latent():
     s = load_settings("drums")
-    assert (s.audio.n_bins, s.audio.n_frames) == (513, 87)
+    # full band: 44.1 kHz, 46 ms windows, an 11.6 ms hop; 1 s + 1024 samples of analysis pad
+    assert (s.audio.sample_rate, s.audio.n_bins, s.audio.n_frames) == (44100, 1025, 89)
     assert s.model.latent_dim == 16
 
 
@@ -82,7 +86,7 @@ def test_round_trip_through_dict():
 
 def test_spec_properties():
     a = AudioSpec(sample_rate=16000, duration=0.5, n_fft=512, hop_length=128)
-    assert (a.n_samples, a.n_bins, a.n_frames) == (8000, 257, 63)
+    assert (a.n_samples, a.n_bins, a.analysis_pad, a.n_frames) == (8000, 257, 256, 65)
 
 
 def test_own_preset_file_is_recorded_by_path(tmp_path):

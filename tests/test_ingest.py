@@ -395,6 +395,21 @@ def test_different_audio_settings_rebuild(small_library, tmp_path):
     assert bank.audio.sample_rate == 22050 and bank.spectra.shape[1] == other.audio.n_bins
 
 
+def test_a_bank_of_an_older_format_is_refused_then_rebuilt(small_library, tmp_path):
+    # format 1 spectra had no analysis pad (other frame count): one line, then a rebuild
+    bank_dir = tmp_path / "bank"
+    ingest_folder(small_library, bank_dir, TINY, jobs=1)
+    index = json.loads((bank_dir / INDEX_FILE).read_text())
+    (bank_dir / INDEX_FILE).write_text(json.dumps(index | {"format": 1}))
+    with pytest.raises(BankError, match=r"bank format 1 was made by an older shotsmith.*"
+                                        r"re-run 'shotsmith ingest'") as err:
+        open_bank(bank_dir)
+    assert "\n" not in str(err.value)
+    s = ingest_folder(small_library, bank_dir, TINY, jobs=1)
+    assert (s.decoded, s.reused) == (10, 0)
+    assert open_bank(bank_dir).spectra.shape[2] == TINY.audio.n_frames
+
+
 def test_jobs_2_gives_the_same_bank_as_jobs_1(small_library, tmp_path):
     calls = []
     ingest_folder(small_library, tmp_path / "one", TINY, jobs=1)

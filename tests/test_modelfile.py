@@ -99,7 +99,7 @@ def test_decode_is_batched_deterministic_and_in_unit_range(trained):
 def test_a_training_checkpoint_is_not_taken_for_a_model(trained, tmp_path):
     _, bank = trained
     ckpt = checkpoint_path(tmp_path / "m.pt")
-    save_atomic({"format": 1, "tool": "shotsmith", "kind": "checkpoint"}, ckpt)
+    save_atomic({"format": FORMAT_VERSION, "tool": "shotsmith", "kind": "checkpoint"}, ckpt)
     with pytest.raises(ModelFileError, match="is a training checkpoint, not a model file"):
         load_model_file(ckpt)
 
@@ -147,6 +147,15 @@ def test_newer_format_asks_for_an_upgrade(trained, tmp_path):
     _one_line(tmp_path / "new.pt",
               rf"format {FORMAT_VERSION + 1} is newer than this shotsmith reads "
               rf"\({FORMAT_VERSION}\); upgrade shotsmith")
+
+
+def test_older_format_asks_to_train_again(trained, tmp_path):
+    # format 1 spectra had no analysis pad: a network trained on them reads the wrong frames
+    p = payload(trained[0])
+    p["format"] = 1
+    torch.save(p, tmp_path / "old.pt")
+    _one_line(tmp_path / "old.pt", r"format 1 was made by an older shotsmith .*"
+                                   r"re-run 'shotsmith train'")
 
 
 def test_missing_keys(trained, tmp_path):

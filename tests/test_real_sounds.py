@@ -22,7 +22,7 @@ COLLECTIONS = {
     "sound-icons": Path("/usr/share/sounds/sound-icons"),
     "sound-theme-freedesktop": Path("/usr/share/sounds/freedesktop"),
 }
-SETTINGS = load_settings("drums")  # 22.05 kHz, 1 s: these are short notification sounds
+SETTINGS = load_settings("drums")  # 44.1 kHz, 1 s: these are short notification sounds
 
 
 def _collection(name: str) -> Path:

@@ -27,7 +27,7 @@ from pipeline.config import load_settings
 from pipeline.errors import ModelFileError
 
 torch = pytest.importorskip("torch")
-from pipeline.modelfile import load_model_file, save_atomic  # noqa: E402
+from pipeline.modelfile import FORMAT_VERSION, load_model_file, save_atomic  # noqa: E402
 
 TINY = load_settings("tiny")
 
@@ -68,7 +68,7 @@ def _hostile_files(folder: Path, marker: Path) -> dict[str, Path]:
     torch.save({"x": Planted(marker)}, files["legacy torch"], _use_new_zipfile_serialization=False)
     # 4. a training checkpoint (read by train --resume) with the planted object.
     files["checkpoint"] = folder / "model.pt.ckpt"
-    torch.save({"format": 1, "tool": "shotsmith", "kind": "checkpoint",
+    torch.save({"format": FORMAT_VERSION, "tool": "shotsmith", "kind": "checkpoint",
                 "state": Planted(marker)}, files["checkpoint"])
     return files
 
@@ -148,7 +148,9 @@ def _variants(tmp_path: Path) -> dict[str, tuple[Path, str]]:
     def put(name: str, payload, why: str) -> None:
         v[name] = (_save(tmp_path / f"{name}.pt", payload), why)
 
-    put("newer format", model_dict(TINY) | {"format": 2}, "format 2 is newer")
+    put("newer format", model_dict(TINY) | {"format": FORMAT_VERSION + 1},
+        f"format {FORMAT_VERSION + 1} is newer")
+    put("older format", model_dict(TINY) | {"format": 1}, "re-run 'shotsmith train'")
     put("far newer format", model_dict(TINY) | {"format": 10**6}, "is newer than this")
     put("format as text", model_dict(TINY) | {"format": "1"}, "no format version")
     put("format as bool", model_dict(TINY) | {"format": True}, "no format version")
