@@ -101,11 +101,22 @@ BitDepthOpt = Annotated[
     str | None, typer.Option("--bit-depth", help="WAV sample format: 16, 24 or 32f.")
 ]
 PeakOpt = Annotated[
-    float | None, typer.Option("--peak-db", max=0.0, help="Peak ceiling in dBFS (default -1).")
+    float | None,
+    typer.Option("--peak-db", max=0.0, help="True-peak ceiling in dBTP (default -1)."),
 ]
 LoudOpt = Annotated[
     float | None,
     typer.Option("--loudness", max=0.0, help="Integrated loudness target in LUFS (BS.1770)."),
+]
+OutRateOpt = Annotated[
+    int | None,
+    typer.Option("--output-rate", min=8000, max=192000,
+                 help="Write WAVs at this sample rate (e.g. 48000; soxr after reconstruction)."),
+]
+TrimOpt = Annotated[
+    bool | None,
+    typer.Option("--trim/--no-trim",
+                 help="End each file where its sound ends (default: full length, silent tail)."),
 ]
 SeedOpt = Annotated[int | None, typer.Option("--seed", help="Random seed (repeatable output).")]
 JobsOpt = Annotated[
@@ -114,7 +125,8 @@ JobsOpt = Annotated[
 ]
 
 
-def _render_overrides(iterations, bit_depth, peak_db, loudness) -> dict[str, Any]:
+def _render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim
+                      ) -> dict[str, Any]:
     if bit_depth is not None and bit_depth not in ("16", "24", "32f"):
         raise typer.BadParameter(f"{bit_depth!r} must be 16, 24 or 32f", param_hint="--bit-depth")
     return {
@@ -122,6 +134,8 @@ def _render_overrides(iterations, bit_depth, peak_db, loudness) -> dict[str, Any
         "bit_depth": bit_depth,
         "peak_db": peak_db,
         "loudness": loudness,
+        "output_rate": output_rate,
+        "trim": trim,
     }
 
 
@@ -175,6 +189,8 @@ def resynth(
     bit_depth: BitDepthOpt = None,
     peak_db: PeakOpt = None,
     loudness: LoudOpt = None,
+    output_rate: OutRateOpt = None,
+    trim: TrimOpt = None,
     overwrite: OverwriteOpt = False,
     jobs: JobsOpt = None,
     as_json: JsonOpt = False,
@@ -183,7 +199,8 @@ def resynth(
     from pipeline.progress import progress_bar
     from pipeline.resynth import resynth_folder
 
-    settings = _settings(preset, render=_render_overrides(iterations, bit_depth, peak_db, loudness))
+    render = _render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim)
+    settings = _settings(preset, render=render)
     with progress_bar("resynth", enabled=_show_progress(as_json)) as bar:
         s = resynth_folder(source, out, settings, overwrite=overwrite, jobs=jobs, progress=bar)
     _emit(s, as_json, _written_line(s, out))
@@ -279,6 +296,8 @@ def generate(
     bit_depth: BitDepthOpt = None,
     peak_db: PeakOpt = None,
     loudness: LoudOpt = None,
+    output_rate: OutRateOpt = None,
+    trim: TrimOpt = None,
     overwrite: OverwriteOpt = False,
     as_json: JsonOpt = False,
 ) -> None:
@@ -294,7 +313,7 @@ def generate(
             temperature=temperature,
             near=near,
             seed=seed,
-            render=_render_overrides(iterations, bit_depth, peak_db, loudness),
+            render=_render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim),
             overwrite=overwrite,
             progress=bar,
         )
@@ -321,6 +340,8 @@ def interpolate(
     bit_depth: BitDepthOpt = None,
     peak_db: PeakOpt = None,
     loudness: LoudOpt = None,
+    output_rate: OutRateOpt = None,
+    trim: TrimOpt = None,
     overwrite: OverwriteOpt = False,
     as_json: JsonOpt = False,
 ) -> None:
@@ -334,7 +355,7 @@ def interpolate(
         raise typer.BadParameter("give at least two sounds A B, or --jobs-file", param_hint="A B")
     if jobs_file is not None and waypoints:
         raise typer.BadParameter("give either sounds A B or --jobs-file, not both")
-    render = _render_overrides(iterations, bit_depth, peak_db, loudness)
+    render = _render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim)
     with progress_bar("interpolate", enabled=_show_progress(as_json)) as bar:
         common = dict(seed=seed, render=render, overwrite=overwrite, progress=bar)
         if jobs_file is not None:
@@ -360,6 +381,8 @@ def vary(
     bit_depth: BitDepthOpt = None,
     peak_db: PeakOpt = None,
     loudness: LoudOpt = None,
+    output_rate: OutRateOpt = None,
+    trim: TrimOpt = None,
     overwrite: OverwriteOpt = False,
     as_json: JsonOpt = False,
 ) -> None:
@@ -375,7 +398,7 @@ def vary(
             n=n,
             amount=amount,
             seed=seed,
-            render=_render_overrides(iterations, bit_depth, peak_db, loudness),
+            render=_render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim),
             overwrite=overwrite,
             progress=bar,
         )

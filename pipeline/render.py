@@ -1,7 +1,9 @@
 """Rendering: [0, 1] spectra to finished WAV files and a manifest.
 
-:func:`finish_audio` is pure post-processing (DC, fades, loudness or peak
-normalisation, the peak ceiling, quantisation with dither). The I/O edge is
+Phase reconstruction (:func:`pipeline.phase.reconstruct`), then an optional
+resampling to the session's rate (``render.output_rate``, soxr), then
+:func:`pipeline.finish.finish_audio` (DC, fades, the end of the sound, loudness or
+true-peak normalisation, quantisation with dither; re-exported here). The I/O edge is
 :class:`OutputFolder` (safe unique names, atomic no-clobber WAV writes, an atomic
 ``manifest.json``) and :func:`render_spectra`, which every command that writes
 audio calls with decoded spectra and per-item metadata.
@@ -27,127 +29,21 @@ from pipeline import __version__, spectra
 from pipeline.bank import write_json_atomic
 from pipeline.config import AudioSpec, RenderSpec
 from pipeline.errors import AudioError, OutputError, ParameterError
-from pipeline.phase import griffin_lim
+from pipeline.finish import (  # noqa: F401 - re-exported: the finishing stage of rendering
+    BS1770_BLOCK_S,
+    fade_curves,
+    finish_audio,
+    integrated_loudness,
+)
+from pipeline.frontend import resample
+from pipeline.phase import reconstruct
 
 MANIFEST_FILE = "manifest.json"
-BS1770_BLOCK_S = 0.4  # gating block length, ITU-R BS.1770-4 Annex 1
 SUBTYPES = {"16": "PCM_16", "24": "PCM_24", "32f": "FLOAT"}
 _PCM_BITS = {"16": 16, "24": 24}
 NAME_MAX_BYTES = 120  # well under the 255-byte limit of common file systems, room for a suffix
 _RESERVED = re.compile(r"^(con|prn|aux|nul|com[0-9]|lpt[0-9])(\..*)?$", re.IGNORECASE)  # Windows
 _UNSAFE = re.compile(r'[/\\:*?"<>|]')
-
-
-# --- finishing (pure) -----------------------------------------------------------------------
-
-
-def fade_curves(n_in: int, n_out: int) -> tuple[np.ndarray, np.ndarray]:
-    """Raised-cosine fade-in (starting at 0) and fade-out (ending at 0) gains."""
-    up = np.sin(0.5 * np.pi * np.arange(n_in) / max(n_in, 1)) ** 2
-    down = np.sin(0.5 * np.pi * np.arange(n_out, 0, -1) / max(n_out, 1)) ** 2
-    down[-1:] = 0.0
-    return up, down
-
-
-def integrated_loudness(y: np.ndarray, sr: int) -> float | None:
-    """BS.1770 integrated loudness in LUFS (pyloudnorm), or None for clips under one 400 ms block.
-
-    ``-inf`` when every block is gated out (silence).
-    """
-    import pyloudnorm
-
-    y = np.asarray(y, dtype=np.float64)
-    if len(y) < BS1770_BLOCK_S * sr:
-        return None
-    return float(pyloudnorm.Meter(sr, block_size=BS1770_BLOCK_S).integrated_loudness(y))
-
-
-def _ceiling_code(peak_db: float, bits: int) -> int:
-    return min(math.floor(10.0 ** (peak_db / 20.0) * 2 ** (bits - 1)), 2 ** (bits - 1) - 1)
-
-
-def _db(x: float) -> float | None:
-    return round(20.0 * math.log10(x), 3) if x > 0 else None
-
-
-def finish_audio(
-    y: np.ndarray, sr: int, spec: RenderSpec, *, rng: np.random.Generator | None = None
-) -> tuple[np.ndarray, dict[str, Any]]:
-    """Finish one clip for writing at ``spec.bit_depth``.
-
-    Removes DC (the mean), applies ``spec.fade_in_ms`` / ``spec.fade_out_ms`` raised-cosine
-    fades, normalises to ``spec.loudness`` LUFS (BS.1770 via pyloudnorm) or else to the
-    peak ceiling, then enforces the ceiling ``spec.peak_db`` dBFS on the quantised samples:
-    24-bit is rounded, 16-bit gets TPDF dither (+-1 LSB, ``rng``), 32f stays float.
-    A loudness target that would push the peak over the ceiling is lowered to fit.
-
-    Returns
-    -------
-    y : np.ndarray, float32, exactly on the bit depth's grid, ``max |y| <= 10^(peak_db/20)``
-    info : dict with ``peak_dbfs``, ``loudness_lufs`` (None under 0.4 s), ``gain_db``,
-        ``normalisation``
-
-    Raises
-    ------
-    AudioError
-        Non-finite samples: such audio is never written.
-    """
-    y = np.array(y, dtype=np.float64).reshape(-1)
-    if not np.all(np.isfinite(y)):
-        raise AudioError("non-finite samples (NaN or Inf); not written")
-    if y.size == 0:
-        raise AudioError("empty audio; not written")
-    y -= y.mean()
-    n_in = min(int(round(spec.fade_in_ms * sr / 1000.0)), len(y) // 2)
-    n_out = min(int(round(spec.fade_out_ms * sr / 1000.0)), len(y) // 2)
-    up, down = fade_curves(n_in, n_out)
-    y[:n_in] *= up
-    y[len(y) - n_out :] *= down
-    ceiling = 10.0 ** (spec.peak_db / 20.0)
-    peak = float(np.max(np.abs(y)))
-    note = "peak"
-    gain = ceiling / peak if peak > 0 else 1.0
-    if peak == 0:
-        note = "none (silent)"
-    elif spec.loudness is not None:
-        measured = integrated_loudness(y, sr)
-        if measured is None:
-            note = f"peak (shorter than a {BS1770_BLOCK_S * 1000:.0f} ms BS.1770 block)"
-        elif not math.isfinite(measured):
-            note = "peak (too quiet for BS.1770 gating)"
-        else:
-            gain = 10.0 ** ((spec.loudness - measured) / 20.0)
-            # the absolute gate makes loudness not exactly linear in gain: correct once
-            again = integrated_loudness(y * gain, sr)
-            if again is not None and math.isfinite(again):
-                gain *= 10.0 ** ((spec.loudness - again) / 20.0)
-            note = f"loudness {spec.loudness:g} LUFS"
-            if peak * gain > ceiling:
-                gain = ceiling / peak
-                note += " (lowered to fit the peak ceiling)"
-    y *= gain
-    bits = _PCM_BITS.get(spec.bit_depth)
-    if bits is None:  # 32-bit float: the largest float32 not above the ceiling
-        top = np.float32(ceiling)
-        top = np.nextafter(top, np.float32(0)) if top > ceiling else top
-        out = np.clip(y.astype(np.float32), -top, top)
-    else:
-        scale = 2.0 ** (bits - 1)
-        codes = y * scale
-        if bits == 16:  # TPDF dither: the sum of two uniform +-0.5 LSB (common practice)
-            rng = rng if rng is not None else np.random.default_rng(0)
-            codes += rng.random(len(y)) - rng.random(len(y))
-        top = _ceiling_code(spec.peak_db, bits)
-        out = (np.clip(np.rint(codes), -top, top) / scale).astype(np.float32)
-    final = float(np.max(np.abs(out)))
-    loud = integrated_loudness(out, sr)
-    info = {
-        "peak_dbfs": _db(final),
-        "loudness_lufs": round(loud, 3) if loud is not None and math.isfinite(loud) else None,
-        "gain_db": _db(gain),
-        "normalisation": note,
-    }
-    return out, info
 
 
 # --- names and files ------------------------------------------------------------------------
@@ -362,7 +258,9 @@ def render_spectra(
     folder = OutputFolder(out_dir, overwrite=overwrite)
     settings = {"audio": dataclasses.asdict(audio), "render": dataclasses.asdict(render)}
     extra = manifest_extra if manifest_extra is not None else {}
-    folder.header = {"settings": settings, "render": settings["render"], **extra}
+    out_sr = render.output_rate or audio.sample_rate
+    folder.header = {"settings": settings, "render": settings["render"],
+                     "sample_rate": audio.sample_rate, "output_rate": out_sr, **extra}
     done, complete = 0, False
     try:
         for U, items in batches:
@@ -379,23 +277,21 @@ def render_spectra(
                 )
                 seeds = [int(it.get("seed", seed + done + j)) for j, it in enumerate(its)]
                 S = spectra.unit_to_magnitude(U[s : s + len(its)], audio)
-                y = griffin_lim(S, n_fft=audio.n_fft, hop_length=audio.hop_length,
-                                length=audio.n_samples, n_iter=render.iterations,
-                                momentum=render.momentum, init=render.phase_init, seed=seeds)
-                sc = spectra.spectral_convergence_db(
-                    S, spectra.magnitude(y.astype(np.float64), n_fft=audio.n_fft,
-                                         hop_length=audio.hop_length))
+                y, sc = reconstruct(S, audio, n_iter=render.iterations, momentum=render.momentum,
+                                    init=render.phase_init, seed=seeds)
+                if out_sr != audio.sample_rate:
+                    y = [resample(yj, orig_sr=audio.sample_rate, target_sr=out_sr) for yj in y]
                 for it, name, sd, yj, scj in zip(its, names, seeds, y, sc):
                     meta = {k: it.get(k) for k in _FIRST_KEYS} | {"seed": sd}
                     meta |= {k: v for k, v in it.items() if k not in meta and k != "stem"}
                     try:
-                        out, info = finish_audio(yj, audio.sample_rate, render,
+                        out, info = finish_audio(yj, out_sr, render,
                                                  rng=np.random.default_rng([sd, 0xD17]))
                     except AudioError as exc:
                         folder.failed.append({"file": name, **meta, "reason": str(exc)})
                         continue
                     meta |= {"sc_db": round(float(scj), 3), **info}
-                    folder.write(name, out, audio.sample_rate, render.bit_depth, meta)
+                    folder.write(name, out, out_sr, render.bit_depth, meta)
                 done += len(its)
                 folder.write_manifest()
                 if progress is not None:
