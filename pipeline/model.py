@@ -16,8 +16,6 @@ squared error summed over bins x frames and ``KL`` summed over latent dimensions
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 import torch
 from torch import nn
@@ -197,64 +195,11 @@ def vae_loss(
     return loss, rec.detach(), kl.sum(dim=1).mean().detach()
 
 
-def kl_weight_at(epoch: float, *, beta: float, warmup_epochs: float) -> float:
-    """KL weight after ``epoch`` (fractional) epochs: 0 rising linearly to ``beta``.
-
-    KL cost annealing, Bowman et al. 2016 ("Generating Sentences from a
-    Continuous Space"): the encoder learns to carry information before the KL
-    term can pull every posterior onto the prior.
-    """
-    if warmup_epochs <= 0:
-        return float(beta)
-    return float(beta) * min(1.0, max(0.0, epoch / warmup_epochs))
-
-
-def lr_at(
-    epoch: float, *, learning_rate: float, warmup_epochs: float, epochs: float,
-    min_lr_ratio: float,
-) -> float:
-    """Learning rate after ``epoch`` (fractional) epochs.
-
-    Linear warm-up from ``learning_rate * min_lr_ratio`` to ``learning_rate``, then
-    cosine decay back to ``learning_rate * min_lr_ratio`` at ``epochs`` (cosine
-    annealing without restarts, Loshchilov & Hutter 2017, "SGDR").
-    """
-    low = learning_rate * min_lr_ratio
-    if epoch < warmup_epochs:
-        return low + (learning_rate - low) * epoch / warmup_epochs
-    span = max(epochs - warmup_epochs, 1e-9)
-    t = min(max((epoch - warmup_epochs) / span, 0.0), 1.0)
-    return low + (learning_rate - low) * 0.5 * (1.0 + math.cos(math.pi * t))
-
-
 @torch.no_grad()
 def init_template(model: ShotVAE, mean_spectrogram: torch.Tensor, *, eps: float = 1e-3) -> None:
     """Start the output template at ``logit(mean)``, so step 0 predicts the mean clip."""
     m = mean_spectrogram.clamp(eps, 1 - eps)
     model.template.copy_(torch.log(m) - torch.log1p(-m))
-
-
-@torch.no_grad()
-def evaluate(
-    model: ShotVAE, spectra: np.ndarray, *, beta: float, loud_weight: float, db_range: float,
-    batch_size: int = 128, device: str | torch.device = "cpu",
-) -> dict[str, float]:
-    """Per-clip losses of ``spectra`` ``(N, bins, frames)`` at ``beta``, z = posterior mean.
-
-    ``val_rms_db`` is the unweighted RMS error of the [0, 1] spectrogram times ``db_range``.
-    """
-    model.eval()
-    sums, n = np.zeros(4), 0
-    for i in range(0, len(spectra), batch_size):
-        x = torch.from_numpy(np.asarray(spectra[i : i + batch_size], dtype=np.float32)).to(device)
-        x_hat, mu, logvar, _ = model(x, sample=False)
-        loss, rec, kl = vae_loss(x_hat, x, mu, logvar, kl_weight=beta, loud_weight=loud_weight)
-        mse = (x_hat - x).pow(2).mean()
-        sums += len(x) * np.array([loss.item(), rec.item(), kl.item(), mse.item()])
-        n += len(x)
-    model.train()
-    loss, rec, kl, mse = (float(v) for v in sums / max(n, 1))
-    return {"val_loss": loss, "val_recon": rec, "val_kl": kl, "val_rms_db": db_range * mse**0.5}
 
 
 @torch.no_grad()

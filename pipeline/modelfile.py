@@ -40,13 +40,7 @@ import torch
 
 from pipeline import __version__
 from pipeline.config import AudioSpec, Settings, settings_from_dict
-from pipeline.errors import (
-    ModelFileError,
-    OutputError,
-    ParameterError,
-    ShotsmithError,
-    TrainingError,
-)
+from pipeline.errors import ModelFileError, OutputError, ParameterError, ShotsmithError
 from pipeline.model import ShotVAE, build_model
 
 FORMAT_VERSION = 1
@@ -175,24 +169,6 @@ def read_archive(path: Path, *, kind: str) -> tuple[dict[str, Any], str]:
         other = "a training checkpoint" if payload.get("kind") == "checkpoint" else "a model file"
         raise ModelFileError(f"{path}: is {other}, not a {what}")
     return payload, hashlib.sha256(data).hexdigest()
-
-
-def check_resumable(
-    ckpt: dict[str, Any], path: Path, *, settings: Settings, bank: dict[str, Any]
-) -> None:
-    """Refuse a checkpoint made with other audio or model settings, or from another bank."""
-    new = settings.to_dict()
-    for table in ("audio", "model"):
-        diff = [f"{table}.{k} is {new[table].get(k)!r} here but {v!r} in the checkpoint"
-                for k, v in ckpt["settings"][table].items() if new[table].get(k) != v]
-        if diff:
-            raise TrainingError(
-                f"{path}: cannot resume with different {table} settings ({'; '.join(diff)}); "
-                "pass the same settings, or train afresh without --resume"
-            )
-    if ckpt["bank"]["names_sha256"] != bank["names_sha256"]:
-        raise TrainingError(f"{path}: the bank {bank['path']} has changed since this "
-                            "checkpoint; train afresh without --resume")
 
 
 def model_payload(
