@@ -251,15 +251,24 @@ def train(
             overwrite=overwrite,
         )
     s = summary.to_dict()
-    human = (
-        f"{s['stopped']} after {s['epochs']} epochs: best validation loss "
-        f"{s['best_val_loss']:.4g} (recon {s['best_val_recon']:.4g}, KL {s['best_val_kl']:.4g}); "
-        f"model in {model}"
-    )
-    if s.get("resume_command"):
-        human += f"\nto resume: {s['resume_command']}"
-        typer.echo(f"to resume: {s['resume_command']}", err=True)
-    _emit(s, as_json, human)
+    _emit(s, as_json, format_train_summary(s))
+    if s["stopped"] == "interrupted":
+        if as_json:  # the JSON carries it too; a person watching stderr sees it once
+            typer.echo(f"to resume: {s['resume_command']}", err=True)
+        raise typer.Exit(130)
+
+
+def format_train_summary(s: dict[str, Any]) -> str:
+    """What a training run left behind, in words: the model file only if it exists."""
+    if s["model"] is None:
+        kept = "no model file yet (the first one is written when an epoch ends)"
+    else:
+        kept = (f"best validation loss {s['best_val_loss']:.4g} (recon {s['best_val_recon']:.4g}, "
+                f"KL {s['best_val_kl']:.4g}) at epoch {s['best_epoch']}; model in {s['model']}")
+    if s["stopped"] != "interrupted":
+        return f"{s['stopped']} after {s['epochs']} epochs: {kept}"
+    return (f"interrupted during epoch {s['epochs'] + 1}: {kept}; checkpoint in "
+            f"{s['checkpoint']}\nto resume: {s['resume_command']}")
 
 
 @app.command()

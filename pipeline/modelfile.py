@@ -23,6 +23,9 @@ lists and dicts. Keys:
     ``{"path", "n_clips", "names_sha256"}`` of the bank it was trained on.
 ``state_dict``
     the network weights.
+
+The training checkpoint ``MODEL.ckpt`` uses the same archive format
+(:func:`save_atomic`, :func:`read_archive`); its payload is in :mod:`pipeline.checkpoint`.
 """
 
 from __future__ import annotations

@@ -320,6 +320,60 @@ def test_ctrl_c_stops_saves_and_prints_the_resume_command(bank, tmp_path):
     load_model_file(model)
 
 
+def _cli_train_interrupted_at(monkeypatch, bank, model, epoch, *extra):
+    """``shotsmith train`` in-process, with a real SIGINT sent at batch 1 of ``epoch``."""
+    from modelfiles import small_preset
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    real = train_mod.train_model
+
+    def with_ctrl_c(*args, progress=None, **kwargs):
+        def on_event(d):
+            if d["event"] == "batch" and d["epoch"] == epoch and d["batch"] == 1:
+                os.kill(os.getpid(), signal.SIGINT)  # the handler train_model installs
+            progress(d)
+
+        return real(*args, progress=on_event, **kwargs)
+
+    monkeypatch.setattr(train_mod, "train_model", with_ctrl_c)
+    preset = small_preset(model.parent, latent_dim=8)
+    return CliRunner().invoke(app, ["train", str(bank), "--model", str(model), "--preset",
+                                    str(preset), "--epochs", "9", *extra])
+
+
+def _strict_json(text: str) -> dict:
+    def no_constants(name):
+        raise AssertionError(f"{name} in the JSON summary")
+
+    return json.loads(text, parse_constant=no_constants)
+
+
+def test_ctrl_c_in_the_first_epoch_exits_130_with_one_json_object_and_no_model(
+        bank, tmp_path, monkeypatch):
+    model = tmp_path / "m.pt"
+    result = _cli_train_interrupted_at(monkeypatch, bank, model, 1, "--json")
+    assert result.exit_code == 130, result.output
+    summary = _strict_json(result.stdout)  # one object, nothing else on stdout, no NaN
+    assert summary["stopped"] == "interrupted" and summary["epochs"] == 0
+    assert summary["model"] is None and not model.exists()  # says exactly what exists
+    assert summary["best_val_loss"] is None
+    assert summary["checkpoint"] == str(checkpoint_path(model)) and checkpoint_path(model).exists()
+    assert result.stderr.count("to resume:") == 1 and summary["resume_command"] in result.stderr
+
+
+def test_ctrl_c_later_names_the_kept_model_and_prints_the_resume_line_once(
+        bank, tmp_path, monkeypatch):
+    model = tmp_path / "m.pt"
+    result = _cli_train_interrupted_at(monkeypatch, bank, model, 2)
+    assert result.exit_code == 130, result.output
+    assert result.output.count("to resume:") == 1  # stdout and stderr together
+    assert f"model in {model}" in result.stdout and model.exists()
+    assert "interrupted during epoch 2" in result.stdout
+    assert load_model_file(model).best["epoch"] == 1
+
+
 # ------------------------------------------------------------------------ quality
 
 
