@@ -54,8 +54,11 @@ def test_resynth_writes_every_usable_file_and_records_sc(source, tmp_path):
     assert s["written"] == 4 and s["skipped"] == 2 and s["ignored"] == 1 and s["failed"] == 0
     manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
     files = sorted(p.name for p in out.glob("*.wav"))
-    assert files == ["hat__kick.wav", "kick__kick.wav", "open hat é.wav", "tone.wav"]
+    assert files == ["hat_kick.wav", "kick_kick.wav", "open hat é.wav", "tone.wav"]
     assert sorted(it["file"] for it in manifest["items"]) == files
+    # the clips are named as a bank names them (ingest of the same folder)
+    assert sorted(it["name"] for it in manifest["items"]) == [
+        "hat/kick", "kick/kick", "open hat é", "tone"]
     assert manifest["complete"] is True and manifest["model"] is None
     assert manifest["settings"]["preset"] == "tiny" and manifest["render"]["iterations"] == 16
     reasons = {s["path"]: s["reason"] for s in manifest["skipped"]}
