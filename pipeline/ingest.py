@@ -25,9 +25,10 @@ from pipeline.bank import (
     RowFile,
     open_bank,
     read_json,
+    stored_settings,
     write_json_atomic,
 )
-from pipeline.config import Settings
+from pipeline.config import Settings, choose_settings
 from pipeline.decode import category_of, check_jobs, clip_names, decode_files, plan_decode
 from pipeline.errors import BankError, ParameterError, ShotsmithError
 from pipeline.frontend import (
@@ -66,6 +67,7 @@ class IngestSummary:
     """What one ingest run did. ``to_dict`` is the ``--json`` summary."""
 
     accepted: int
+    preset: str  # where the settings came from (a preset name or file)
     skipped: int
     ignored: int
     hidden: int
@@ -87,9 +89,10 @@ class IngestSummary:
 def _check_paths(source: str | Path, bank_dir: str | Path) -> tuple[Path, Path]:
     src, bank = source_folder(source), Path(bank_dir).expanduser()
     if is_inside(bank, src):
-        raise ParameterError(f"{bank_dir}: --bank must not be inside SOURCE ({source})")
+        raise ParameterError(
+            f"{bank_dir}: the bank folder must not be inside the source folder {source}")
     if bank.exists() and not bank.is_dir():
-        raise BankError(f"{bank_dir}: --bank exists and is not a folder")
+        raise BankError(f"{bank_dir}: exists and is not a folder")
     return src, bank
 
 
@@ -103,7 +106,8 @@ def _previous(bank: Path, audio: dict[str, Any]):
     except BankError:
         raw = {"tool": "shotsmith"}
     if not isinstance(raw, dict) or raw.get("tool") != "shotsmith":
-        raise BankError(f"{index_path}: exists and is not a shotsmith bank; choose another --bank")
+        raise BankError(f"{index_path}: exists and is not a shotsmith bank; choose another "
+                        "bank folder")
     if raw.get("audio") != audio:
         changed = sorted(k for k in audio if (raw.get("audio") or {}).get(k) != audio[k])
         return {}, {}, None, f"rebuilt: audio settings changed ({', '.join(changed)})"
@@ -125,7 +129,7 @@ def _previous(bank: Path, audio: dict[str, Any]):
 def ingest_folder(
     source: str | Path,
     bank_dir: str | Path,
-    settings: Settings,
+    settings: Settings | None = None,
     *,
     jobs: int | None = None,
     progress: Progress | None = None,
@@ -137,6 +141,8 @@ def ingest_folder(
     source : folder of one-shots; only read, never written.
     bank_dir : output folder, outside ``source``.
     settings : resolved settings; ``settings.audio`` fixes the clip and spectrogram shape.
+        Default: those of the bank already in ``bank_dir`` (its preset), else the default
+        preset (see :func:`pipeline.config.choose_settings`).
     jobs : worker processes for decoding; default all available cores, 1 = in-process.
     progress : optional ``callable(done, total)`` over the audio files found.
 
@@ -148,6 +154,8 @@ def ingest_folder(
     t0 = time.perf_counter()
     jobs = check_jobs(jobs)
     src, bank = _check_paths(source, bank_dir)
+    if settings is None:
+        settings, _ = choose_settings(None, stored_settings(bank))
     spec = settings.audio
     settings_dict = settings.to_dict()
     audio = settings_dict["audio"]
@@ -239,6 +247,7 @@ def ingest_folder(
         staging_path.unlink(missing_ok=True)
     return IngestSummary(
         accepted=len(clips),
+        preset=settings.preset,
         skipped=len(skipped),
         ignored=scan.ignored,
         hidden=scan.hidden,

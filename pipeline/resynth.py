@@ -60,7 +60,8 @@ def resynth_folder(
     t0 = time.perf_counter()
     src, out = source_folder(source), Path(out_dir).expanduser()
     if is_inside(out, src):
-        raise OutputError(f"{out_dir}: --out must not be inside SOURCE ({source})")
+        raise OutputError(
+            f"{out_dir}: the output folder must not be inside the source folder {source}")
     jobs = check_jobs(jobs)
     audio, render = settings.audio, settings.render
     scan = scan_folder(src)

@@ -34,7 +34,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from pipeline.bank import Bank, open_bank
+from pipeline.bank import Bank, open_bank, stored_settings
 from pipeline.checkpoint import (
     Kept,
     TrainState,
@@ -42,7 +42,7 @@ from pipeline.checkpoint import (
     load_checkpoint,
     save_checkpoint,
 )
-from pipeline.config import Settings, TrainSpec, available_cores
+from pipeline.config import Settings, TrainSpec, available_cores, choose_settings
 from pipeline.dataset import (
     EpochSampler,
     SpectraDataset,
@@ -253,6 +253,7 @@ class TrainSummary:
     """
 
     model: str | None  # the model file, when one exists
+    preset: str  # where the settings came from (a preset name or file)
     checkpoint: str | None  # the checkpoint to resume from, when the run was interrupted
     stopped: str  # "early stop", "max epochs", "interrupted"
     epochs: int  # completed in total, resumed runs included
@@ -379,7 +380,7 @@ def finish(files: RunFiles, st: TrainState, kept: Kept) -> None:
 def train_model(
     bank_dir: str | Path,
     model_path: str | Path,
-    settings: Settings,
+    settings: Settings | None = None,
     *,
     resume: bool = False,
     progress: Emit | None = None,
@@ -395,8 +396,9 @@ def train_model(
         A bank made by ``ingest``; its audio spec replaces ``settings.audio``.
     model_path : path
         The model file to write; the checkpoint goes to ``model_path + ".ckpt"``.
-    settings : Settings
+    settings : Settings, optional
         The ``model`` and ``train`` tables are used; all tables go into the model file.
+        Default: the settings the bank was made with (its preset).
     resume : bool
         Continue from the checkpoint (same model settings and bank required). The
         ``train`` table of ``settings`` applies from there on (``epochs`` may grow).
@@ -430,6 +432,8 @@ def train_model(
     bank = open_bank(bank_dir)
     if len(bank) == 0:
         raise TrainingError(f"{bank_dir}: the bank holds no clips")
+    if settings is None:
+        settings, _ = choose_settings(None, stored_settings(bank_dir))
     settings = settings.replace(audio=bank.audio)
     files = RunFiles(model_path, settings, bank, {
         "path": str(bank_dir.resolve()), "n_clips": len(bank),
@@ -476,7 +480,7 @@ def train_model(
     seconds = time.perf_counter() - started
     best = st.best or {}
     return TrainSummary(
-        model=str(model_path) if st.best is not None else None,
+        model=str(model_path) if st.best is not None else None, preset=settings.preset,
         checkpoint=str(files.checkpoint) if stopped == "interrupted" else None,
         stopped=stopped, epochs=st.epoch, epochs_this_run=st.epoch - start_epoch,
         best_epoch=best.get("epoch", 0), best_val_loss=best.get("val_loss"),

@@ -99,7 +99,7 @@ def test_parallel_decoding_gives_the_same_files(source, tmp_path):
 
 def test_output_inside_source_is_refused(source):
     before = _tree_digest(source)
-    with pytest.raises(OutputError, match="must not be inside SOURCE"):
+    with pytest.raises(OutputError, match="must not be inside the source folder"):
         resynth_folder(source, source / "out", SETTINGS)
     assert _tree_digest(source) == before and not (source / "out").exists()
 
