@@ -256,7 +256,8 @@ def inspect_model(
     """
     from pipeline import report
     from pipeline.bank import write_json_atomic
-    from pipeline.latent import health_report, sample_prior
+    from pipeline.latent import sample_prior
+    from pipeline.latent_health import health_report
     from pipeline.modelfile import load_model_file
 
     out_dir, seed = Path(out_dir), 0 if seed is None else int(seed)

@@ -26,6 +26,7 @@ import soundfile as sf
 from pipeline import __version__, spectra
 from pipeline.bank import write_json_atomic
 from pipeline.config import AudioSpec, RenderSpec
+from pipeline.dsp import raised_cosine
 from pipeline.errors import AudioError, OutputError, ParameterError
 from pipeline.phase import griffin_lim
 
@@ -39,14 +40,6 @@ _UNSAFE = re.compile(r'[/\\:*?"<>|]')
 
 
 # --- finishing (pure) -----------------------------------------------------------------------
-
-
-def fade_curves(n_in: int, n_out: int) -> tuple[np.ndarray, np.ndarray]:
-    """Raised-cosine fade-in (starting at 0) and fade-out (ending at 0) gains."""
-    up = np.sin(0.5 * np.pi * np.arange(n_in) / max(n_in, 1)) ** 2
-    down = np.sin(0.5 * np.pi * np.arange(n_out, 0, -1) / max(n_out, 1)) ** 2
-    down[-1:] = 0.0
-    return up, down
 
 
 def integrated_loudness(y: np.ndarray, sr: int) -> float | None:
@@ -100,7 +93,7 @@ def finish_audio(
     y -= y.mean()
     n_in = min(int(round(spec.fade_in_ms * sr / 1000.0)), len(y) // 2)
     n_out = min(int(round(spec.fade_out_ms * sr / 1000.0)), len(y) // 2)
-    up, down = fade_curves(n_in, n_out)
+    up, down = raised_cosine(n_in), raised_cosine(n_out, rising=False)
     y[:n_in] *= up
     y[len(y) - n_out :] *= down
     ceiling = 10.0 ** (spec.peak_db / 20.0)
