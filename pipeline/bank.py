@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-from pipeline.config import AudioSpec, spec_from_dict
+from pipeline.config import AudioSpec, Settings, settings_from_dict, spec_from_dict
 from pipeline.errors import BankError, OutputError, PresetError
 
 BANK_FORMAT = 2  # 2: spectra analysed after AudioSpec.analysis_pad of silence
@@ -246,3 +246,27 @@ def open_bank(path: Path) -> Bank:
             f"{expected} (re-run ingest)"
         )
     return Bank(path, audio, index.get("settings", {}), index["clips"], spectra)
+
+
+def stored_settings(path: str | Path) -> Settings | None:
+    """The settings a bank was made with (its preset and every table), or None where
+    ``path`` holds no shotsmith bank (yet).
+
+    Raises
+    ------
+    BankError
+        The bank's stored settings are not valid settings.
+    """
+    path = Path(path)
+    try:
+        index = read_index(path)
+    except BankError:
+        return None
+    stored = index.get("settings")
+    if not isinstance(stored, dict) or not stored:
+        return None
+    try:
+        return settings_from_dict(stored, where=f"{path / INDEX_FILE} settings")
+    except PresetError as exc:
+        raise BankError(f"{path / INDEX_FILE}: bad stored settings ({exc}); "
+                        "give a preset instead") from None

@@ -10,6 +10,8 @@ from __future__ import annotations
 import json
 import os
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from functools import wraps
 from pathlib import Path
 from typing import Annotated, Any
@@ -87,30 +89,28 @@ def _show_progress(as_json: bool) -> bool:
 # Options shared by several commands -------------------------------------------------------
 
 PresetOpt = Annotated[
-    str,
-    typer.Option("--preset", help="Preset: tiny, drums, long, or a TOML file."),
+    str | None,
+    typer.Option("--preset", help="Preset: tiny, drums, long, or a TOML file (default: the "
+                 "bank's own settings, else drums)."),
 ]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON summary object on stdout.")]
 OverwriteOpt = Annotated[
     bool, typer.Option("--overwrite", help="Replace existing output files of the same name.")
 ]
-IterOpt = Annotated[
-    int | None, typer.Option("--iterations", min=0, help="Fast Griffin-Lim iterations.")
-]
+IterOpt = Annotated[int | None, typer.Option("--iterations", help="Fast Griffin-Lim iterations.")]
 BitDepthOpt = Annotated[
     str | None, typer.Option("--bit-depth", help="WAV sample format: 16, 24 or 32f.")
 ]
 PeakOpt = Annotated[
-    float | None,
-    typer.Option("--peak-db", max=0.0, help="True-peak ceiling in dBTP (default -1)."),
+    float | None, typer.Option("--peak-db", help="True-peak ceiling in dBTP (default -1).")
 ]
 LoudOpt = Annotated[
     float | None,
-    typer.Option("--loudness", max=0.0, help="Integrated loudness target in LUFS (BS.1770)."),
+    typer.Option("--loudness", help="Integrated loudness target in LUFS (BS.1770)."),
 ]
 OutRateOpt = Annotated[
     int | None,
-    typer.Option("--output-rate", min=8000, max=192000,
+    typer.Option("--output-rate",
                  help="Write WAVs at this sample rate (e.g. 48000; soxr after reconstruction)."),
 ]
 TrimOpt = Annotated[
@@ -124,25 +124,59 @@ JobsOpt = Annotated[
     typer.Option("--jobs", min=1, help="Decoding processes (default: all cores)."),
 ]
 
+# The setting each option overrides. The settings validate every value once, against their
+# own ranges; a bad value that came from an option is reported as that option's usage error.
+OPTION_OF = {
+    "audio.sample_rate": "--sample-rate", "audio.duration": "--duration",
+    "model.latent_dim": "--latent-dim", "train.epochs": "--epochs", "train.beta": "--beta",
+    "train.seed": "--seed", "train.batch_size": "--batch-size",
+    "render.iterations": "--iterations", "render.bit_depth": "--bit-depth",
+    "render.peak_db": "--peak-db", "render.loudness": "--loudness",
+    "render.output_rate": "--output-rate",
+}
+
 
 def _render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim
                       ) -> dict[str, Any]:
-    if bit_depth is not None and bit_depth not in ("16", "24", "32f"):
-        raise typer.BadParameter(f"{bit_depth!r} must be 16, 24 or 32f", param_hint="--bit-depth")
-    return {
-        "iterations": iterations,
-        "bit_depth": bit_depth,
-        "peak_db": peak_db,
-        "loudness": loudness,
-        "output_rate": output_rate,
-        "trim": trim,
-    }
+    return {"iterations": iterations, "bit_depth": bit_depth, "peak_db": peak_db,
+            "loudness": loudness, "output_rate": output_rate, "trim": trim}
 
 
-def _settings(preset: str, **tables: dict[str, Any]):
-    from pipeline.config import load_settings
+@contextmanager
+def _options_checked(overrides: dict[str, dict[str, Any]]) -> Iterator[None]:
+    """Turn a settings error caused by an option the user gave into that option's usage error."""
+    from pipeline.errors import PresetError
 
-    return load_settings(preset, overrides=tables)
+    try:
+        yield
+    except PresetError as exc:
+        table, _, key = (exc.key or "").partition(".")
+        if exc.key in OPTION_OF and overrides.get(table, {}).get(key) is not None:
+            reason = str(exc).split(": ", 1)[-1]
+            raise typer.BadParameter(reason, param_hint=OPTION_OF[exc.key]) from None
+        raise
+
+
+def _settings(preset: str | None, *, bank: Path | None = None, **overrides: dict[str, Any]):
+    """``(settings, where they come from)``: ``--preset``, else the bank's own, else the
+    default preset (:func:`pipeline.config.choose_settings`)."""
+    from pipeline.bank import stored_settings
+    from pipeline.config import choose_settings
+
+    stored = stored_settings(bank) if preset is None and bank is not None else None
+    with _options_checked(overrides):
+        return choose_settings(preset, stored, overrides)
+
+
+def _model_and_render(model: Path, iterations, bit_depth, peak_db, loudness, output_rate, trim):
+    """The loaded model file and its render settings with the render options applied."""
+    from pipeline.modelfile import load_model_file
+
+    mf = load_model_file(model)
+    overrides = {"render": _render_overrides(iterations, bit_depth, peak_db, loudness,
+                                             output_rate, trim)}
+    with _options_checked(overrides):
+        return mf, mf.settings.with_overrides(overrides).render
 
 
 # Commands -------------------------------------------------------------------------------
@@ -153,7 +187,7 @@ def _settings(preset: str, **tables: dict[str, Any]):
 def ingest(
     source: Annotated[Path, typer.Argument(help="Folder of one-shots (searched recursively).")],
     bank: Annotated[Path, typer.Option("--bank", help="Bank folder to create or update.")],
-    preset: PresetOpt = "drums",
+    preset: PresetOpt = None,
     sample_rate: Annotated[
         int | None, typer.Option("--sample-rate", help="Resample every file to this rate (Hz).")
     ] = None,
@@ -167,15 +201,17 @@ def ingest(
     from pipeline.ingest import ingest_folder
     from pipeline.progress import progress_bar
 
-    settings = _settings(preset, audio={"sample_rate": sample_rate, "duration": duration})
+    settings, source_of_settings = _settings(
+        preset, bank=bank, audio={"sample_rate": sample_rate, "duration": duration})
     with progress_bar("ingest", enabled=_show_progress(as_json)) as bar:
         summary = ingest_folder(source, bank, settings, jobs=jobs, progress=bar)
     s = summary.to_dict()
     _emit(
-        s,
+        s | {"settings_from": source_of_settings},
         as_json,
         f"{s['accepted']} clips in {bank} ({s['decoded']} decoded, {s['reused']} reused), "
-        f"{s['skipped']} skipped, {s['ignored']} ignored; reasons in {bank / 'ingest-report.json'}",
+        f"{s['skipped']} skipped, {s['ignored']} ignored; reasons in {bank / 'ingest-report.json'}"
+        f"\nsettings: {source_of_settings}",
     )
 
 
@@ -184,7 +220,7 @@ def ingest(
 def resynth(
     source: Annotated[Path, typer.Argument(help="Folder of one-shots to resynthesize.")],
     out: Annotated[Path, typer.Option("--out", help="Output folder for WAVs and manifest.json.")],
-    preset: PresetOpt = "drums",
+    preset: PresetOpt = None,
     iterations: IterOpt = None,
     bit_depth: BitDepthOpt = None,
     peak_db: PeakOpt = None,
@@ -199,8 +235,9 @@ def resynth(
     from pipeline.progress import progress_bar
     from pipeline.resynth import resynth_folder
 
-    render = _render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim)
-    settings = _settings(preset, render=render)
+    settings, _ = _settings(
+        preset, render=_render_overrides(iterations, bit_depth, peak_db, loudness, output_rate,
+                                         trim))
     with progress_bar("resynth", enabled=_show_progress(as_json)) as bar:
         s = resynth_folder(source, out, settings, overwrite=overwrite, jobs=jobs, progress=bar)
     _emit(s, as_json, _written_line(s, out))
@@ -220,14 +257,16 @@ def _written_line(s: dict[str, Any], out: Path) -> str:
 def train(
     bank: Annotated[Path, typer.Argument(help="Bank folder written by 'shotsmith ingest'.")],
     model: Annotated[Path, typer.Option("--model", help="Model file to write.")],
-    preset: PresetOpt = "drums",
-    epochs: Annotated[int | None, typer.Option("--epochs", min=1, help="Maximum epochs.")] = None,
+    preset: PresetOpt = None,
+    epochs: Annotated[int | None, typer.Option("--epochs", help="Maximum epochs.")] = None,
     latent_dim: Annotated[
-        int | None, typer.Option("--latent-dim", min=1, help="Size of the latent code.")
+        int | None, typer.Option("--latent-dim", help="Size of the latent code.")
     ] = None,
-    beta: Annotated[float | None, typer.Option("--beta", min=0.0, help="KL weight.")] = None,
+    beta: Annotated[float | None, typer.Option("--beta", help="KL weight.")] = None,
     seed: SeedOpt = None,
-    batch_size: Annotated[int | None, typer.Option("--batch-size", min=1)] = None,
+    batch_size: Annotated[
+        int | None, typer.Option("--batch-size", help="Clips per optimiser step.")
+    ] = None,
     resume: Annotated[
         bool, typer.Option("--resume", help="Continue an interrupted run from its checkpoint.")
     ] = False,
@@ -241,14 +280,17 @@ def train(
     from pipeline.progress import progress_bar
     from pipeline.train import train_model
 
-    settings = _settings(
+    settings, source_of_settings = _settings(
         preset,
+        bank=bank,
         model={"latent_dim": latent_dim},
         train={"epochs": epochs, "beta": beta, "seed": seed, "batch_size": batch_size},
     )
     with progress_bar("train", enabled=_show_progress(as_json)) as bar:
 
         def on_epoch(info: dict[str, Any]) -> None:
+            if info["event"] == "start":  # the bank and model file passed their checks
+                typer.echo(f"settings: {source_of_settings}", err=True)
             bar(
                 info["epoch"],
                 info["epochs"],
@@ -267,16 +309,25 @@ def train(
             device=device,
             overwrite=overwrite,
         )
-    s = summary.to_dict()
-    human = (
-        f"{s['stopped']} after {s['epochs']} epochs: best validation loss "
-        f"{s['best_val_loss']:.4g} (recon {s['best_val_recon']:.4g}, KL {s['best_val_kl']:.4g}); "
-        f"model in {model}"
-    )
-    if s.get("resume_command"):
-        human += f"\nto resume: {s['resume_command']}"
-        typer.echo(f"to resume: {s['resume_command']}", err=True)
-    _emit(s, as_json, human)
+    s = summary.to_dict() | {"settings_from": source_of_settings}
+    _emit(s, as_json, format_train_summary(s))
+    if s["stopped"] == "interrupted":
+        if as_json:  # the JSON carries it too; a person watching stderr sees it once
+            typer.echo(f"to resume: {s['resume_command']}", err=True)
+        raise typer.Exit(130)
+
+
+def format_train_summary(s: dict[str, Any]) -> str:
+    """What a training run left behind, in words: the model file only if it exists."""
+    if s["model"] is None:
+        kept = "no model file yet (the first one is written when an epoch ends)"
+    else:
+        kept = (f"best validation loss {s['best_val_loss']:.4g} (recon {s['best_val_recon']:.4g}, "
+                f"KL {s['best_val_kl']:.4g}) at epoch {s['best_epoch']}; model in {s['model']}")
+    if s["stopped"] != "interrupted":
+        return f"{s['stopped']} after {s['epochs']} epochs: {kept}"
+    return (f"interrupted during epoch {s['epochs'] + 1}: {kept}; checkpoint in "
+            f"{s['checkpoint']}\nto resume: {s['resume_command']}")
 
 
 @app.command()
@@ -286,11 +337,16 @@ def generate(
     out: Annotated[Path, typer.Option("--out", help="Output folder.")],
     n: Annotated[int, typer.Option("-n", "--count", min=1, help="How many one-shots.")] = 16,
     temperature: Annotated[
-        float, typer.Option("--temperature", min=0.0, help="Spread of the prior samples.")
+        float, typer.Option("--temperature", min=0.0,
+                            help="Spread around where the library lives (1 = as fitted).")
     ] = 1.0,
     near: Annotated[
         str | None, typer.Option("--near", help="Sample near this category of the library.")
     ] = None,
+    prior: Annotated[
+        str, typer.Option("--prior", help="fitted: the mixture fitted to the library's codes "
+                                          "(default); normal: the VAE prior N(0, I).")
+    ] = "fitted",
     seed: SeedOpt = None,
     iterations: IterOpt = None,
     bit_depth: BitDepthOpt = None,
@@ -301,22 +357,16 @@ def generate(
     overwrite: OverwriteOpt = False,
     as_json: JsonOpt = False,
 ) -> None:
-    """New one-shots sampled from the model's latent prior."""
+    """New one-shots sampled where the library lives in latent space (or from the prior)."""
     from pipeline.create import generate_sounds
     from pipeline.progress import progress_bar
 
+    mf, render = _model_and_render(model, iterations, bit_depth, peak_db, loudness,
+                                   output_rate, trim)
     with progress_bar("generate", enabled=_show_progress(as_json)) as bar:
-        s = generate_sounds(
-            model,
-            out,
-            n=n,
-            temperature=temperature,
-            near=near,
-            seed=seed,
-            render=_render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim),
-            overwrite=overwrite,
-            progress=bar,
-        )
+        s = generate_sounds(mf, out, n=n, temperature=temperature, near=near, seed=seed,
+                            prior=prior,
+                            render=render, overwrite=overwrite, progress=bar)
     _emit(s, as_json, _written_line(s, out))
 
 
@@ -355,13 +405,14 @@ def interpolate(
         raise typer.BadParameter("give at least two sounds A B, or --jobs-file", param_hint="A B")
     if jobs_file is not None and waypoints:
         raise typer.BadParameter("give either sounds A B or --jobs-file, not both")
-    render = _render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim)
+    mf, render = _model_and_render(model, iterations, bit_depth, peak_db, loudness,
+                                   output_rate, trim)
     with progress_bar("interpolate", enabled=_show_progress(as_json)) as bar:
         common = dict(seed=seed, render=render, overwrite=overwrite, progress=bar)
         if jobs_file is not None:
-            s = interpolate_jobs(model, jobs_file, out, steps=steps, path=path, **common)
+            s = interpolate_jobs(mf, jobs_file, out, steps=steps, path=path, **common)
         else:
-            s = interpolate_sounds(model, waypoints, out, steps=steps, path=path, **common)
+            s = interpolate_sounds(mf, waypoints, out, steps=steps, path=path, **common)
     _emit(s, as_json, _written_line(s, out))
 
 
@@ -390,18 +441,11 @@ def vary(
     from pipeline.create import vary_sound
     from pipeline.progress import progress_bar
 
+    mf, render = _model_and_render(model, iterations, bit_depth, peak_db, loudness,
+                                   output_rate, trim)
     with progress_bar("vary", enabled=_show_progress(as_json)) as bar:
-        s = vary_sound(
-            model,
-            sound,
-            out,
-            n=n,
-            amount=amount,
-            seed=seed,
-            render=_render_overrides(iterations, bit_depth, peak_db, loudness, output_rate, trim),
-            overwrite=overwrite,
-            progress=bar,
-        )
+        s = vary_sound(mf, sound, out, n=n, amount=amount, seed=seed, render=render,
+                       overwrite=overwrite, progress=bar)
     _emit(s, as_json, _written_line(s, out))
 
 

@@ -9,6 +9,7 @@ The resolved settings are stored in the bank, the model file and every manifest.
 from __future__ import annotations
 
 import dataclasses
+import difflib
 import os
 import sys
 import typing
@@ -25,6 +26,7 @@ else:  # pragma: no cover
 
 BIT_DEPTHS = ("16", "24", "32f")
 PHASE_INITS = ("pghi", "random", "zeros")
+DECODER_VARIANCES = ("fixed", "calibrated")
 
 
 def available_cores() -> int:
@@ -36,7 +38,7 @@ def available_cores() -> int:
 
 
 def _fail(where: str, msg: str) -> None:
-    raise PresetError(f"{where}: {msg}")
+    raise PresetError(f"{where}: {msg}", key=where if "." in where else None)
 
 
 @dataclass(frozen=True)
@@ -147,6 +149,7 @@ class TrainSpec:
     kl_warmup_epochs: int = 20  # KL weight rises linearly from 0 to beta (Bowman et al. 2016)
     free_bits: float = 0.0  # nats per latent dimension (Kingma et al. 2016); 0 = off
     loud_weight: float = 3.0  # reconstruction weight 1 + loud_weight * level: loud parts count more
+    decoder_variance: str = "fixed"  # "calibrated": learned from the fit (Rybkin et al. 2021)
     val_fraction: float = 0.15
     patience: int = 30  # epochs without validation improvement before stopping
     seed: int = 0
@@ -158,10 +161,14 @@ class TrainSpec:
             _fail("train.batch_size", f"{self.batch_size} must be at least 1")
         if not 0 < self.learning_rate < 1:
             _fail("train.learning_rate", f"{self.learning_rate} must be between 0 and 1")
-        if self.weight_decay < 0 or self.beta < 0 or self.free_bits < 0:
-            _fail("train.beta", "weight_decay, beta and free_bits must not be negative")
+        for key in ("weight_decay", "beta", "free_bits"):
+            if getattr(self, key) < 0:
+                _fail(f"train.{key}", f"{getattr(self, key)} must not be negative")
         if not 0 <= self.loud_weight <= 100:
             _fail("train.loud_weight", f"{self.loud_weight} must be between 0 and 100")
+        if self.decoder_variance not in DECODER_VARIANCES:
+            _fail("train.decoder_variance",
+                  f"{self.decoder_variance!r} must be one of {', '.join(DECODER_VARIANCES)}")
         if self.lr_warmup_epochs < 0 or self.kl_warmup_epochs < 0 or self.patience < 1:
             _fail("train.patience", "warm-up epochs must be >= 0 and patience >= 1")
         if not 0 < self.min_lr_ratio <= 1:
@@ -235,6 +242,10 @@ class Settings:
     def replace(self, **specs: Any) -> Settings:
         return dataclasses.replace(self, **specs)
 
+    def with_overrides(self, overrides: dict[str, dict[str, Any]] | None) -> Settings:
+        """These settings with ``overrides`` applied (``None`` values ignored) and validated."""
+        return settings_from_dict(self.to_dict(), overrides, name=self.preset)
+
 
 def _check_type(where: str, value: Any, hint: Any) -> Any:
     """Coerce a TOML/JSON value to the field's type, or fail naming ``where``."""
@@ -302,8 +313,11 @@ def resolve_preset_path(preset: str | Path) -> Path:
         return p
     path = presets_dir() / f"{preset}.toml"
     if not path.is_file():
-        names = ", ".join(preset_names()) or "none found"
-        raise PresetError(f"unknown preset {str(preset)!r} (known presets: {names})")
+        known = preset_names()
+        close = difflib.get_close_matches(str(preset), known, n=1)
+        hint = f"did you mean {close[0]!r}? " if close else ""
+        raise PresetError(f"unknown preset {str(preset)!r} ({hint}known presets: "
+                          f"{', '.join(known) or 'none found'})")
     return path
 
 
@@ -333,10 +347,16 @@ def settings_from_dict(
     data: dict[str, Any],
     overrides: dict[str, dict[str, Any]] | None = None,
     *,
-    name: str = "custom",
+    name: str | None = None,
     where: str = "settings",
 ) -> Settings:
-    """Build :class:`Settings` from a mapping of tables (a preset, or one stored in a file)."""
+    """Build :class:`Settings` from a mapping of tables (a preset, or one stored in a file).
+
+    The preset name is ``name``, else the mapping's own ``preset`` entry (settings stored in
+    a bank, model file or manifest keep the name they were made with), else ``"custom"``.
+    """
+    stored = data.get("preset")
+    name = name or (stored if isinstance(stored, str) and stored else "custom")
     data = {k: v for k, v in data.items() if k != "preset"}
     for table in data:
         if table not in SPEC_TYPES:
@@ -349,3 +369,32 @@ def settings_from_dict(
                 merged[key] = value
         specs[table] = spec_from_dict(cls, merged, table)
     return Settings(**specs, preset=name)
+
+
+DEFAULT_PRESET = "drums"
+
+
+def choose_settings(
+    preset: str | Path | None,
+    stored: Settings | None = None,
+    overrides: dict[str, dict[str, Any]] | None = None,
+) -> tuple[Settings, str]:
+    """The settings a run uses, and where they come from in words.
+
+    An explicit ``preset`` wins; without one, the settings ``stored`` with the input
+    (a bank's own, from :func:`pipeline.bank.stored_settings`) are used, else the
+    default preset. ``overrides`` apply on top and are validated once, here.
+
+    Returns
+    -------
+    settings : Settings
+    source : str, e.g. ``"preset tiny"``, ``"the bank's settings (preset tiny)"``,
+        ``"preset drums (the default)"``
+    """
+    if preset is not None:
+        settings = load_settings(preset, overrides)
+        return settings, f"preset {settings.preset}"
+    if stored is not None:
+        return stored.with_overrides(overrides), f"the bank's settings (preset {stored.preset})"
+    settings = load_settings(DEFAULT_PRESET, overrides)
+    return settings, f"preset {settings.preset} (the default)"

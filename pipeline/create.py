@@ -20,7 +20,9 @@ from typing import Any
 import numpy as np
 
 from pipeline import latent
+from pipeline.config import RenderSpec
 from pipeline.errors import ParameterError, ShotsmithError
+from pipeline.sampler import draw_codes
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -28,6 +30,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 PATH_KINDS = ("slerp", "lerp")
+PRIORS = ("fitted", "normal")  # generate: the mixture fitted to the codes, or N(0, I)
 
 
 @dataclass(frozen=True)
@@ -40,10 +43,11 @@ class Waypoint:
     source: dict[str, Any]
 
 
-def _load(model_path: Path):
-    from pipeline.modelfile import load_model_file  # torch: only for generating commands
+def _load(model):
+    """A loaded :class:`~pipeline.modelfile.ModelFile` as it is, or the model file at a path."""
+    from pipeline.modelfile import ModelFile, load_model_file  # torch: only when generating
 
-    return load_model_file(model_path)
+    return model if isinstance(model, ModelFile) else load_model_file(model)
 
 
 def _seed(seed: int | None) -> int:
@@ -96,17 +100,19 @@ def _render(
     out: Path,
     *,
     seed: int,
-    render: dict[str, Any] | None,
+    render: RenderSpec | None,
     overwrite: bool,
     progress: Callable[..., None] | None,
     summary: dict[str, Any],
 ) -> dict[str, Any]:
     """Decode codes in batches and hand them to the shared renderer."""
-    from pipeline.config import spec_from_dict
     from pipeline.render import render_spectra
 
-    base = mf.settings.render.__dict__ | {k: v for k, v in (render or {}).items() if v is not None}
-    render_spec = spec_from_dict(type(mf.settings.render), base, "render")
+    if render is not None and not isinstance(render, RenderSpec):
+        raise ParameterError("render must be a RenderSpec (e.g. mf.settings.render or "
+                             "settings.with_overrides({'render': {...}}).render), or None")
+    render_spec = render or mf.settings.render
+    settings = mf.settings.replace(render=render_spec)
     for item, z, near in zip(items, Z, _nearest(mf, Z)):
         item["z"] = [round(float(v), 6) for v in z]
         item["nearest"] = near
@@ -127,7 +133,7 @@ def _render(
         total=len(items),
         manifest_extra={
             "model": {"path": str(mf.path), "sha256": mf.sha256},
-            "settings": mf.settings.to_dict() | {"render": render_spec.__dict__},
+            "settings": settings.to_dict(),
             "request": summary,
         },
     )
@@ -149,23 +155,32 @@ def generate_sounds(
     temperature: float = 1.0,
     near: str | None = None,
     seed: int | None = None,
-    render: dict[str, Any] | None = None,
+    render: RenderSpec | None = None,
     overwrite: bool = False,
     progress: Callable[..., None] | None = None,
+    prior: str = "fitted",
 ) -> dict[str, Any]:
-    """``n`` new one-shots from the prior N(0, T²I), or near one category of the library."""
+    """``n`` new one-shots from where the library lives, or near one category of it.
+
+    ``prior="fitted"`` (default) samples the Gaussian mixture fitted to the clips' codes
+    (:mod:`pipeline.sampler`), with ``near`` that category's own mixture; ``"normal"``
+    samples the VAE's prior N(0, T²I). ``temperature`` T scales the spread.
+    """
     if n < 1:
-        raise ParameterError(f"-n={n} must be at least 1")
+        raise ParameterError(f"n={n} must be at least 1")
+    if prior not in PRIORS:
+        raise ParameterError(f"prior={prior!r} must be one of {', '.join(PRIORS)}")
+    if prior == "normal" and near is not None:
+        raise ParameterError("near= samples the category's fitted mixture; it does not "
+                             "combine with prior='normal'")
     mf = _load(model)
     seed = _seed(seed)
     rng = np.random.default_rng(seed)
-    if near is None:
+    sources: list[str] = [] if near is None else [f"category:{near}"]
+    if prior == "normal":
         Z = latent.sample_prior(n, mf.mu.shape[1], temperature=temperature, rng=rng)
-        sources: list[str] = []
     else:
-        mean, cov = latent.category_gaussian(mf.mu, list(mf.clip_categories), near)
-        Z = latent.sample_near(mean, cov, n, temperature=temperature, rng=rng)
-        sources = [f"category:{near}"]
+        Z = draw_codes(*mf.samplers(), n, near=near, temperature=temperature, rng=rng)
     items = [
         {"stem": f"generate-{i:04d}", "kind": "generate", "seed": seed + i, "sources": sources}
         for i in range(n)
@@ -175,6 +190,7 @@ def generate_sounds(
         "n": n,
         "temperature": temperature,
         "near": near,
+        "prior": prior,
         "seed": seed,
     }
     return _render(
@@ -194,11 +210,11 @@ def _path_items(
     points: Sequence[Waypoint], steps: int, kind: str, seed: int, label: str | None = None
 ) -> tuple[np.ndarray, list[dict[str, Any]]]:
     if kind not in PATH_KINDS:
-        raise ParameterError(f"--path={kind!r} must be slerp or lerp")
+        raise ParameterError(f"path={kind!r} must be slerp or lerp")
     if len(points) < 2:
         raise ParameterError("an interpolation needs at least two sounds")
     if steps < 2:
-        raise ParameterError(f"--steps={steps} must be at least 2")
+        raise ParameterError(f"steps={steps} must be at least 2")
     Z = latent.latent_path(np.stack([p.mu for p in points]), steps, kind=kind)
     stem = label or "interpolate-" + "-to-".join(p.label for p in points)
     sources = [p.source.get("clip") or p.source.get("file") for p in points]
@@ -224,7 +240,7 @@ def interpolate_sounds(
     steps: int = 8,
     path: str = "slerp",
     seed: int | None = None,
-    render: dict[str, Any] | None = None,
+    render: RenderSpec | None = None,
     overwrite: bool = False,
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
@@ -314,7 +330,7 @@ def interpolate_jobs(
     steps: int = 8,
     path: str = "slerp",
     seed: int | None = None,
-    render: dict[str, Any] | None = None,
+    render: RenderSpec | None = None,
     overwrite: bool = False,
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
@@ -363,13 +379,13 @@ def vary_sound(
     n: int = 8,
     amount: float = 1.0,
     seed: int | None = None,
-    render: dict[str, Any] | None = None,
+    render: RenderSpec | None = None,
     overwrite: bool = False,
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """``n`` variations around one sound's posterior; ``amount=0`` gives its reconstruction."""
     if n < 1:
-        raise ParameterError(f"-n={n} must be at least 1")
+        raise ParameterError(f"n={n} must be at least 1")
     mf = _load(model)
     seed = _seed(seed)
     point = resolve_sound(mf, sound)

@@ -77,6 +77,8 @@ def run_demo(
             out / "bank", model, settings, progress=on_epoch(bar), overwrite=overwrite
         )
     timings["train"] = round(time.perf_counter() - t0, 2)
+    if trained.stopped == "interrupted":  # Ctrl-C: stop the demo here (exit 130)
+        raise KeyboardInterrupt
     mf = load_model_file(model)
     common = {"overwrite": overwrite, "seed": 1}
     gen = step("generate", generate_sounds, model, out / "generated", n=16, **common)

@@ -17,7 +17,15 @@ class ParameterError(ShotsmithError, ValueError):
 
 
 class PresetError(ShotsmithError):
-    """A preset file that cannot be read, or a key or value in it that is wrong."""
+    """A preset file that cannot be read, or a key or value in it that is wrong.
+
+    ``key`` is the setting at fault (``"render.peak_db"``) when there is one, so a
+    caller that set it (the CLI, from an option) can say which of its inputs was wrong.
+    """
+
+    def __init__(self, message: str, *, key: str | None = None) -> None:
+        super().__init__(message)
+        self.key = key
 
 
 class AudioError(ShotsmithError):

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.config import RenderSpec
+from pipeline.dsp import raised_cosine
 from pipeline.errors import AudioError
 
 BS1770_BLOCK_S = 0.4  # gating block length, ITU-R BS.1770-4 Annex 1
@@ -103,14 +104,6 @@ def _db(x: float) -> float | None:
 # --- transforming ---------------------------------------------------------------------------
 
 
-def fade_curves(n_in: int, n_out: int) -> tuple[np.ndarray, np.ndarray]:
-    """Raised-cosine fade-in (starting at 0) and fade-out (ending at 0) gains."""
-    up = np.sin(0.5 * np.pi * np.arange(n_in) / max(n_in, 1)) ** 2
-    down = np.sin(0.5 * np.pi * np.arange(n_out, 0, -1) / max(n_out, 1)) ** 2
-    down[-1:] = 0.0
-    return up, down
-
-
 def apply_fades(y: np.ndarray, sr: int, *, fade_in_ms: float, fade_out_ms: float,
                 end: int) -> np.ndarray:
     """DC removed, a fade-in, and a fade-out that reaches digital silence at ``end``.
@@ -124,9 +117,8 @@ def apply_fades(y: np.ndarray, sr: int, *, fade_in_ms: float, fade_out_ms: float
         y[:end] -= y[:end].mean()
     n_in = min(int(round(fade_in_ms * sr / 1000.0)), len(y) // 2)
     n_out = min(int(round(fade_out_ms * sr / 1000.0)), end // 2 if end < len(y) else len(y) // 2)
-    up, down = fade_curves(n_in, n_out)
-    y[:n_in] *= up
-    y[end - n_out : end] *= down
+    y[:n_in] *= raised_cosine(n_in)
+    y[end - n_out : end] *= raised_cosine(n_out, rising=False)
     y[end:] = 0.0
     return y
 
@@ -209,13 +201,15 @@ def finish_audio(
     ceiling = 10.0 ** (spec.peak_db / 20.0)
     gain, note = _gain(y, sr, spec, ceiling)
     dither_seed = int((rng if rng is not None else np.random.default_rng(0)).integers(2**63))
-    for _ in range(4):  # rounding and dither can lift the true peak a hair: back off
+    bits = _PCM_BITS.get(spec.bit_depth)
+    step = 2.0 ** (1 - bits) if bits else 1e-7  # one quantisation step
+    for _ in range(8):  # rounding and dither can lift the true peak a hair: back off
         out = quantise(y * gain, spec.bit_depth, end=end,
                        rng=np.random.default_rng(dither_seed))
         tp = true_peak(out, sr)
         if tp <= ceiling:
             break
-        gain *= ceiling / tp * (1.0 - 1e-6)
+        gain *= max(ceiling - 2.0 * step, 0.5 * ceiling) / tp
     loud = integrated_loudness(out, sr)
     info = {
         "peak_dbfs": _db(float(np.max(np.abs(out)))),

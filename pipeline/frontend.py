@@ -20,6 +20,7 @@ import soundfile as sf
 import soxr
 
 from pipeline.config import AudioSpec
+from pipeline.dsp import raised_cosine
 from pipeline.errors import AudioError
 from pipeline.scan import sound_path
 
@@ -78,12 +79,6 @@ def align_onset(y: np.ndarray, *, sr: int, onset_db: float, preroll_ms: float) -
     return y[max(0, onset_index(y, onset_db=onset_db) - preroll) :]
 
 
-def fade_out_curve(n: int) -> np.ndarray:
-    """Raised-cosine (half Hann) fade of ``n`` samples, from just under 1 down to exactly 0."""
-    k = np.arange(1, n + 1, dtype=np.float64)
-    return (0.5 * (1.0 + np.cos(np.pi * k / n))).astype(np.float32)
-
-
 def fit_length(y: np.ndarray, *, n_samples: int, sr: int, fade_ms: float) -> np.ndarray:
     """Crop to ``n_samples`` with a raised-cosine fade-out ending at the crop point, or zero-pad."""
     y = np.asarray(y, dtype=np.float32)
@@ -92,7 +87,7 @@ def fit_length(y: np.ndarray, *, n_samples: int, sr: int, fade_ms: float) -> np.
     out = y[:n_samples].copy()
     n_fade = min(n_samples, int(round(fade_ms * sr / 1000.0)))
     if n_fade:
-        out[-n_fade:] *= fade_out_curve(n_fade)
+        out[-n_fade:] *= raised_cosine(n_fade, rising=False).astype(np.float32)
     return out
 
 

@@ -37,6 +37,11 @@ _RATINGS = ("good", "fair", "poor")
 # Rule of thumb (ours): spectral convergence of decoded magnitudes on held-out clips.
 SC_GOOD_DB = -10.0  # about 30 % relative magnitude error
 SC_FAIR_DB = -5.0  # about 56 %
+# Rule of thumb (ours): descriptor distance of each held-out clip's reconstruction to its
+# original, over the typical distance between two originals (pipeline.quality).
+PAIRED_GOOD = 0.5
+PAIRED_FAIR = 1.0
+PAIRED_MIN_CLIPS = 4  # fewer clips cannot give a typical distance between originals
 # Spectral convergence that phase reconstruction adds to the decoded spectra's own
 # (audio against originals, minus decoded magnitudes against originals).
 PHASE_ADDED_GOOD_DB = 1.5
@@ -107,6 +112,19 @@ def _decoded_verdict(sc_db: float) -> dict[str, str]:
                     "train longer, use a larger latent or a smaller beta")
 
 
+def _paired_verdict(ratio: float, sc_db: float) -> dict[str, str]:
+    """Rated by how far reconstructions sound from their originals (descriptor distance,
+    paired), in units of the typical distance between two originals. Spectral convergence
+    alone would call well-reconstructed noisy sounds poor: their fine structure is random."""
+    text = (f"held-out clips reconstructed {ratio:.2f} of the typical distance between two "
+            f"originals away from their own (descriptors; spectral convergence {_db(sc_db)} dB)")
+    if ratio <= PAIRED_GOOD:
+        return _verdict("good", f"{text}: close to the originals")
+    if ratio <= PAIRED_FAIR:
+        return _verdict("fair", f"{text}: recognisable, with detail lost; more epochs help")
+    return _verdict("poor", f"{text}: far from the originals; train longer or on more clips")
+
+
 def _phase_verdict(added_db: float, ceiling_db: float, iterations: int) -> dict[str, str]:
     text = (f"phase reconstruction ({iterations} Griffin-Lim iterations) adds {_db(added_db)} dB "
             f"of error; on the originals themselves it reaches {_db(ceiling_db)} dB")
@@ -143,13 +161,13 @@ def _phase_section(S_ref: np.ndarray, S_dec: np.ndarray, sc_dec: np.ndarray, aud
     from pipeline.phase import reconstruct
     from pipeline.spectra import magnitude, pad_for_analysis
 
-    def heard(S: np.ndarray) -> np.ndarray:  # magnitudes of the audio a user would get
+    def heard(S: np.ndarray) -> tuple[np.ndarray, np.ndarray]:  # the audio a user would get
         y, _ = reconstruct(S, audio, n_iter=render.iterations, momentum=render.momentum,
                            init=render.phase_init, seed=seed)
-        return magnitude(pad_for_analysis(y, audio), n_fft=audio.n_fft,
-                         hop_length=audio.hop_length).astype(np.float32)
+        return y, magnitude(pad_for_analysis(y, audio), n_fft=audio.n_fft,
+                            hop_length=audio.hop_length).astype(np.float32)
 
-    A_dec, A_ref = heard(S_dec), heard(S_ref)
+    (y_dec, A_dec), (y_ref, A_ref) = heard(S_dec), heard(S_ref)
     sc_p, lsd_p = _spectral_errors(S_ref, A_dec)  # the audio against the originals
     # Griffin-Lim on the originals (the resynthesis ceiling), and how consistent the
     # decoded spectra are (how closely any audio can have them) for comparison
@@ -157,9 +175,22 @@ def _phase_section(S_ref: np.ndarray, S_dec: np.ndarray, sc_dec: np.ndarray, aud
     sc_k, _ = _spectral_errors(S_dec, A_dec)
     added, ceiling = float(np.median(sc_p - sc_dec)), float(np.median(sc_c))
     return {"measured": True, **_summary(sc_p, lsd_p), "added_db": added,
+            "paired_descriptor_ratio": _paired_ratio(y_ref, y_dec, audio.sample_rate),
             "ceiling_spectral_convergence_db": ceiling, "consistency_db": float(np.median(sc_k)),
             "iterations": int(render.iterations), "momentum": float(render.momentum),
             **_phase_verdict(added, ceiling, render.iterations)}
+
+
+def _paired_ratio(y_ref: np.ndarray, y_dec: np.ndarray, sr: int) -> float:
+    """Median descriptor distance (pipeline.quality) of each clip's reconstruction to its
+    original, over the typical spacing of the originals. The originals are heard through
+    the same phase reconstruction, so this measures the model, not Griffin-Lim."""
+    from pipeline import quality
+
+    X_ref, X_dec = quality.describe_many(y_ref, sr), quality.describe_many(y_dec, sr)
+    scale = quality.fit_scale(X_ref)
+    A, B = quality.apply_scale(X_ref, scale), quality.apply_scale(X_dec, scale)
+    return float(np.median(quality.paired_distance_ratio(B, A, A)))
 
 
 def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[int],
@@ -206,6 +237,8 @@ def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[i
     S_dec = np.stack([kept[k][3] for k in take])
 
     ph = _phase_section(S_ref, S_dec, sc[take], audio, mf.settings.render, seed)
+    if len(take) >= PAIRED_MIN_CLIPS:  # a listener's measure rates the decoded clips
+        dec |= _paired_verdict(ph["paired_descriptor_ratio"], dec["spectral_convergence_db"])
     rating = _worst(dec["rating"], ph["rating"])
     text = dec["verdict"].split(": ", 1)[1]
     if ph["rating"] != "good":
@@ -257,8 +290,9 @@ def inspect_model(
     """
     from pipeline import report
     from pipeline.bank import write_json_atomic
-    from pipeline.latent import health_report, sample_prior
+    from pipeline.latent_health import health_report
     from pipeline.modelfile import load_model_file
+    from pipeline.sampler import sample_mixture
 
     out_dir, seed = Path(out_dir), 0 if seed is None else int(seed)
     _check_outputs(out_dir, overwrite)
@@ -273,8 +307,10 @@ def inspect_model(
     logvar = None if mf.logvar is None else np.asarray(mf.logvar, np.float64)
     cats = list(mf.clip_categories)
     names = list(mf.clip_names)
-    latent = health_report(mu, logvar, cats, n_samples=N_PRIOR_SAMPLES, rng=seed)
-    prior = sample_prior(N_PRIOR_SAMPLES, mu.shape[1], rng=seed)  # the same draws as above
+    # holes and category balance are measured where generate samples: the fitted mixture
+    prior = sample_mixture(mf.samplers()[0], N_PRIOR_SAMPLES, rng=seed)
+    latent = health_report(mu, logvar, cats, samples=prior,
+                           sampler="the mixture fitted to the codes (what generate uses)")
 
     idx, source = _split_indices(mf.split, len(mu))
     rows = figure_clips(idx, cats)
@@ -327,8 +363,8 @@ def _figures(key: str, h: dict[str, Any]) -> str:
              f"LSD {_db(d['log_spectral_distance_db'])} dB")
         p = h.get("phase", {})
         if p.get("measured"):
-            s += (f"; audio SC {_db(p['spectral_convergence_db'])} dB, "
-                  f"LSD {_db(p['log_spectral_distance_db'])} dB")
+            s = (f"paired distance {p['paired_descriptor_ratio']:.2f}; " + s
+                 + f"; audio SC {_db(p['spectral_convergence_db'])} dB")
         return s
     if key == "active_units":
         return f"{h['active']} of {h['total']}"

@@ -22,7 +22,7 @@ RngLike = np.random.Generator | int | None
 # Shrinkage toward an isotropic target, in pseudo-clips: a category of n clips
 # gets weight n / (n + _SHRINK_CLIPS) on its own sample covariance.
 _SHRINK_CLIPS = 4.0
-_NO_CATEGORY = "(none)"
+NO_CATEGORY = "(none)"
 
 
 def _rng(rng: RngLike) -> np.random.Generator:
@@ -38,7 +38,8 @@ def _vector(x: Any, name: str) -> np.ndarray:
     return a
 
 
-def _codes(x: Any, name: str, *, min_rows: int = 1) -> np.ndarray:
+def check_codes(x: Any, name: str, *, min_rows: int = 1) -> np.ndarray:
+    """``x`` as float64 ``(n, latent_dim)`` codes, finite, at least ``min_rows`` of them."""
     a = np.asarray(x, dtype=np.float64)
     if a.ndim != 2 or a.shape[1] == 0:
         raise ParameterError(f"{name} must be a 2-D array (n, latent_dim), got shape {a.shape}")
@@ -49,7 +50,8 @@ def _codes(x: Any, name: str, *, min_rows: int = 1) -> np.ndarray:
     return a
 
 
-def _count(n: Any, name: str, *, low: int = 0) -> int:
+def check_count(n: Any, name: str, *, low: int = 0) -> int:
+    """``n`` as an int, refused unless a whole number of at least ``low``."""
     if isinstance(n, bool) or int(n) != n or n < low:
         raise ParameterError(f"{name}={n!r} must be an integer >= {low}")
     return int(n)
@@ -86,7 +88,7 @@ def sample_prior(n: int, dim: int, *, temperature: float = 1.0, rng: RngLike = N
     -------
     z : np.ndarray [shape=(n, dim)]
     """
-    n, dim = _count(n, "n"), _count(dim, "dim", low=1)
+    n, dim = check_count(n, "n"), check_count(dim, "dim", low=1)
     return _temperature(temperature) * _rng(rng).standard_normal((n, dim))
 
 
@@ -111,7 +113,7 @@ def sample_near(
     cov = np.asarray(cov, dtype=np.float64)
     if cov.shape != (mean.size, mean.size) or not np.all(np.isfinite(cov)):
         raise ParameterError(f"cov must be a finite ({mean.size}, {mean.size}) matrix")
-    n, t = _count(n, "n"), _temperature(temperature)
+    n, t = check_count(n, "n"), _temperature(temperature)
     eps = _rng(rng).standard_normal((n, mean.size))
     return mean + t * (eps @ _cholesky(cov).T)
 
@@ -145,7 +147,7 @@ def category_gaussian(
     ParameterError
         For a category the model does not know; the message lists the known ones.
     """
-    mu = _codes(mu, "mu")
+    mu = check_codes(mu, "mu")
     labels = list(categories)
     if len(labels) != mu.shape[0]:
         raise ParameterError(f"categories has {len(labels)} entries for {mu.shape[0]} codes")
@@ -153,7 +155,7 @@ def category_gaussian(
     if category not in known:
         listed = ", ".join(known) if known else "none (its clips had no category folders)"
         raise ParameterError(f"unknown category {category!r}; known categories: {listed}")
-    lab = np.array([_NO_CATEGORY if c is None else c for c in labels], dtype=object)
+    lab = np.array([NO_CATEGORY if c is None else c for c in labels], dtype=object)
     sel = mu[lab == category]
     mean = sel.mean(axis=0)
     dim = mu.shape[1]
@@ -196,7 +198,7 @@ def variations(
     mu, logvar = _vector(mu, "mu"), _vector(logvar, "logvar")
     if logvar.shape != mu.shape:
         raise ParameterError(f"logvar has shape {logvar.shape}, mu has {mu.shape}")
-    n = _count(n, "n")
+    n = check_count(n, "n")
     if not np.isfinite(amount) or amount < 0:
         raise ParameterError(f"amount={amount!r} must be a finite number >= 0")
     if amount == 0:
@@ -274,9 +276,9 @@ def waypoint_steps(waypoints: np.ndarray, steps: int) -> np.ndarray:
     -------
     index : np.ndarray [shape=(K,), int]
     """
-    w = _codes(waypoints, "waypoints", min_rows=2)
+    w = check_codes(waypoints, "waypoints", min_rows=2)
     k = len(w)
-    steps = _count(steps, "steps", low=k)
+    steps = check_count(steps, "steps", low=k)
     seg = np.linalg.norm(np.diff(w, axis=0), axis=1)
     cum = np.concatenate([[0.0], np.cumsum(seg)])
     frac = cum / cum[-1] if cum[-1] > 0 else np.linspace(0.0, 1.0, k)
@@ -307,7 +309,7 @@ def latent_path(
     """
     if kind not in ("slerp", "lerp"):
         raise ParameterError(f"kind={kind!r} must be 'slerp' or 'lerp'")
-    w = _codes(waypoints, "waypoints", min_rows=2)
+    w = check_codes(waypoints, "waypoints", min_rows=2)
     idx = waypoint_steps(w, steps)
     step = slerp if kind == "slerp" else lerp
     out = np.empty((int(steps), w.shape[1]))
@@ -330,7 +332,7 @@ def nearest_codes(z: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, np.ndar
     index : np.ndarray [shape=(M,), int64]
     distance : np.ndarray [shape=(M,), float64]
     """
-    z, codes = _codes(z, "z", min_rows=0), _codes(codes, "codes")
+    z, codes = check_codes(z, "z", min_rows=0), check_codes(codes, "codes")
     if z.shape[1] != codes.shape[1]:
         raise ParameterError(f"z has latent size {z.shape[1]}, codes have {codes.shape[1]}")
     if len(z) == 0:
@@ -339,7 +341,7 @@ def nearest_codes(z: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, np.ndar
     return np.asarray(index, np.int64), np.asarray(dist, np.float64)
 
 
-def _nn_self(codes: np.ndarray) -> np.ndarray:
+def nearest_other_distances(codes: np.ndarray) -> np.ndarray:
     """Each code's distance to its nearest *other* code."""
     dist, _ = cKDTree(codes).query(codes, k=2)
     return dist[:, 1]
@@ -350,8 +352,8 @@ def typical_spacing(codes: np.ndarray) -> float:
 
     Exact duplicates are left out when they would make the median zero.
     """
-    codes = _codes(codes, "codes", min_rows=2)
-    d = _nn_self(codes)
+    codes = check_codes(codes, "codes", min_rows=2)
+    d = nearest_other_distances(codes)
     med = float(np.median(d))
     if med > 0:
         return med
@@ -370,17 +372,3 @@ def distance_ratio(distance: np.ndarray | float, spacing: float) -> np.ndarray:
     if not np.isfinite(spacing) or spacing <= 0:
         raise ParameterError(f"spacing={spacing!r} must be a positive number")
     return np.asarray(distance, np.float64) / spacing
-
-
-# ---------------------------------------------------------------- health
-# The health metrics live in pipeline.latent_health; they are reachable here too
-# (PEP 562 module __getattr__), loaded on first use.
-_HEALTH = ("active_units", "prior_match", "category_balance", "holes", "health_report")
-
-
-def __getattr__(name: str) -> Any:
-    if name in _HEALTH:
-        from pipeline import latent_health
-
-        return getattr(latent_health, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -3,8 +3,8 @@
 Pure numpy over the training clips' posterior means (and log-variances). Each
 metric returns a JSON-able dict with a ``rating`` (good / fair / poor) and a
 one-line ``verdict`` in plain words for a sound designer; the rating thresholds
-are our own rule of thumb. The functions are also reachable as
-``pipeline.latent.<name>``.
+are our own rule of thumb. This module imports :mod:`pipeline.latent` (the sampler
+``generate`` uses); nothing there imports it back.
 """
 
 from __future__ import annotations
@@ -16,12 +16,12 @@ import numpy as np
 
 from pipeline.errors import ParameterError
 from pipeline.latent import (
-    _NO_CATEGORY,
+    NO_CATEGORY,
     RngLike,
-    _codes,
-    _count,
-    _nn_self,
+    check_codes,
+    check_count,
     nearest_codes,
+    nearest_other_distances,
     sample_prior,
 )
 
@@ -43,7 +43,7 @@ def active_units(mu: np.ndarray, threshold: float = 0.01) -> dict[str, Any]:
     dict with ``active``, ``total``, ``threshold``, ``variances`` (per dimension),
     ``rating`` and ``verdict``.
     """
-    mu = _codes(mu, "mu", min_rows=2)
+    mu = check_codes(mu, "mu", min_rows=2)
     var = mu.var(axis=0, ddof=1)  # Burda et al. 2016: Cov_x of the posterior mean
     k, d = int(np.sum(var > threshold)), mu.shape[1]
     if k == 0:
@@ -75,13 +75,13 @@ def prior_match(mu: np.ndarray, logvar: np.ndarray | None = None) -> dict[str, A
     dict with ``mean_norm``, ``kl_gaussian_to_prior``, ``kl_per_dim``,
     ``rating`` and ``verdict``. The rating thresholds are our own rule of thumb.
     """
-    mu = _codes(mu, "mu", min_rows=2)
+    mu = check_codes(mu, "mu", min_rows=2)
     n, d = mu.shape
     m = mu.mean(axis=0)
     dev = mu - m
     cov = dev.T @ dev / n
     if logvar is not None:
-        lv = _codes(logvar, "logvar")
+        lv = check_codes(logvar, "logvar")
         if lv.shape != mu.shape:
             raise ParameterError(f"logvar has shape {lv.shape}, mu has {mu.shape}")
         cov = cov + np.diag(np.exp(lv).mean(axis=0))
@@ -119,8 +119,8 @@ def category_balance(
     dict with ``shares`` (list of {category, prior_share, library_share}),
     ``total_variation``, ``rating`` and ``verdict``.
     """
-    codes = _codes(codes, "codes")
-    labels = [_NO_CATEGORY if c is None else str(c) for c in categories]
+    codes = check_codes(codes, "codes")
+    labels = [NO_CATEGORY if c is None else str(c) for c in categories]
     if len(labels) != len(codes):
         raise ParameterError(f"categories has {len(labels)} entries for {len(codes)} codes")
     names = sorted(set(labels))
@@ -162,10 +162,10 @@ def holes(prior_samples: np.ndarray, codes: np.ndarray, percentile: float = 95) 
     dict with ``share``, ``expected_share``, ``threshold``, ``percentile``,
     ``rating`` and ``verdict``.
     """
-    codes = _codes(codes, "codes", min_rows=2)
+    codes = check_codes(codes, "codes", min_rows=2)
     if not 0 < percentile < 100:
         raise ParameterError(f"percentile={percentile!r} must be between 0 and 100")
-    threshold = float(np.percentile(_nn_self(codes), percentile))
+    threshold = float(np.percentile(nearest_other_distances(codes), percentile))
     _, dist = nearest_codes(prior_samples, codes)
     if len(dist) == 0:
         raise ParameterError("prior_samples is empty")
@@ -191,17 +191,24 @@ def health_report(
     *,
     n_samples: int = 2000,
     rng: RngLike = 0,
+    samples: np.ndarray | None = None,
+    sampler: str = "the prior N(0, I)",
 ) -> dict[str, Any]:
     """Every latent health metric in one JSON-able dict.
 
-    Keys: ``active_units``, ``prior_match``, ``category_balance``, ``holes``;
-    the last two use ``n_samples`` draws from the prior (seeded by ``rng``).
+    Keys: ``active_units``, ``prior_match``, ``category_balance``, ``holes`` and
+    ``sampler`` (what the last two drew from). Those two are measured on ``samples``,
+    the codes ``generate`` would draw, or else on ``n_samples`` draws from the prior
+    (seeded by ``rng``).
     """
-    mu = _codes(mu, "mu", min_rows=2)
-    z = sample_prior(_count(n_samples, "n_samples", low=1), mu.shape[1], rng=rng)
+    mu = check_codes(mu, "mu", min_rows=2)
+    if samples is None:
+        samples = sample_prior(check_count(n_samples, "n_samples", low=1), mu.shape[1], rng=rng)
+    z = check_codes(samples, "samples")
     return {
         "active_units": active_units(mu),
         "prior_match": prior_match(mu, logvar),
         "category_balance": category_balance(z, mu, categories),
         "holes": holes(z, mu),
+        "sampler": f"{len(z)} samples from {sampler}",
     }

@@ -175,6 +175,23 @@ def recon_error(x_hat: torch.Tensor, x: torch.Tensor, *, loud_weight: float = 0.
     return err.flatten(1).sum(dim=1)
 
 
+MIN_LOG_SIGMA2 = math.log(1e-3**2)  # the calibrated decoder's floor: sigma >= 0.001 (0.1 dB)
+
+
+def calibrated_nll(sse: torch.Tensor, n_values: int) -> torch.Tensor:
+    """Per-clip Gaussian negative log-likelihood at the best shared variance, ``(B,)``.
+
+    A calibrated decoder (Rybkin, Daniilidis & Levine 2021, "Simple and Effective VAE
+    Training with Calibrated Decoders"): the decoder is N(x_hat, sigma^2 I) with one
+    sigma^2 for the batch, set to its maximum-likelihood value ``mean(sse) / n_values``.
+    Then ``-log p(x|z) = n/2 log(2 pi sigma^2) + sse / (2 sigma^2)``: the reconstruction
+    is weighed against the KL by how well the model already fits, with no fixed variance
+    (no hand-set beta) deciding it. ``log sigma^2`` is floored at :data:`MIN_LOG_SIGMA2`.
+    """
+    log_s2 = torch.clamp(torch.log(sse.mean() / n_values), min=MIN_LOG_SIGMA2)
+    return 0.5 * n_values * (math.log(2.0 * math.pi) + log_s2) + 0.5 * sse / log_s2.exp()
+
+
 def vae_loss(
     x_hat: torch.Tensor,
     x: torch.Tensor,
@@ -184,47 +201,21 @@ def vae_loss(
     kl_weight: float,
     free_bits: float = 0.0,
     loud_weight: float = 0.0,
+    calibrated: bool = False,
 ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
     """The negative ELBO per clip (batch mean): ``(loss, recon, kl)``.
 
     ``loss = recon + kl_weight * kl_term`` (Kingma & Welling 2014; the weight is
-    beta of Higgins et al. 2017 during warm-up). ``kl`` is the true batch-mean KL,
-    without the free-bits floor; ``recon`` and ``kl`` are detached, for reporting.
+    beta of Higgins et al. 2017 during warm-up). ``recon`` is the weighted squared
+    error summed over bins x frames (a Gaussian decoder of fixed variance 1/2, up to a
+    constant) or, with ``calibrated``, :func:`calibrated_nll`. ``kl`` is the true
+    batch-mean KL, without the free-bits floor; ``recon`` and ``kl`` are detached.
     """
-    rec = recon_error(x_hat, x, loud_weight=loud_weight).mean()
+    sse = recon_error(x_hat, x, loud_weight=loud_weight)
+    rec = (calibrated_nll(sse, x[0].numel()) if calibrated else sse).mean()
     kl = kl_per_dim(mu, logvar)
     loss = rec + kl_weight * kl_term(kl, free_bits=free_bits)
     return loss, rec.detach(), kl.sum(dim=1).mean().detach()
-
-
-def kl_weight_at(epoch: float, *, beta: float, warmup_epochs: float) -> float:
-    """KL weight after ``epoch`` (fractional) epochs: 0 rising linearly to ``beta``.
-
-    KL cost annealing, Bowman et al. 2016 ("Generating Sentences from a
-    Continuous Space"): the encoder learns to carry information before the KL
-    term can pull every posterior onto the prior.
-    """
-    if warmup_epochs <= 0:
-        return float(beta)
-    return float(beta) * min(1.0, max(0.0, epoch / warmup_epochs))
-
-
-def lr_at(
-    epoch: float, *, learning_rate: float, warmup_epochs: float, epochs: float,
-    min_lr_ratio: float,
-) -> float:
-    """Learning rate after ``epoch`` (fractional) epochs.
-
-    Linear warm-up from ``learning_rate * min_lr_ratio`` to ``learning_rate``, then
-    cosine decay back to ``learning_rate * min_lr_ratio`` at ``epochs`` (cosine
-    annealing without restarts, Loshchilov & Hutter 2017, "SGDR").
-    """
-    low = learning_rate * min_lr_ratio
-    if epoch < warmup_epochs:
-        return low + (learning_rate - low) * epoch / warmup_epochs
-    span = max(epochs - warmup_epochs, 1e-9)
-    t = min(max((epoch - warmup_epochs) / span, 0.0), 1.0)
-    return low + (learning_rate - low) * 0.5 * (1.0 + math.cos(math.pi * t))
 
 
 @torch.no_grad()
@@ -232,29 +223,6 @@ def init_template(model: ShotVAE, mean_spectrogram: torch.Tensor, *, eps: float 
     """Start the output template at ``logit(mean)``, so step 0 predicts the mean clip."""
     m = mean_spectrogram.clamp(eps, 1 - eps)
     model.template.copy_(torch.log(m) - torch.log1p(-m))
-
-
-@torch.no_grad()
-def evaluate(
-    model: ShotVAE, spectra: np.ndarray, *, beta: float, loud_weight: float, db_range: float,
-    batch_size: int = 128, device: str | torch.device = "cpu",
-) -> dict[str, float]:
-    """Per-clip losses of ``spectra`` ``(N, bins, frames)`` at ``beta``, z = posterior mean.
-
-    ``val_rms_db`` is the unweighted RMS error of the [0, 1] spectrogram times ``db_range``.
-    """
-    model.eval()
-    sums, n = np.zeros(4), 0
-    for i in range(0, len(spectra), batch_size):
-        x = torch.from_numpy(np.asarray(spectra[i : i + batch_size], dtype=np.float32)).to(device)
-        x_hat, mu, logvar, _ = model(x, sample=False)
-        loss, rec, kl = vae_loss(x_hat, x, mu, logvar, kl_weight=beta, loud_weight=loud_weight)
-        mse = (x_hat - x).pow(2).mean()
-        sums += len(x) * np.array([loss.item(), rec.item(), kl.item(), mse.item()])
-        n += len(x)
-    model.train()
-    loss, rec, kl, mse = (float(v) for v in sums / max(n, 1))
-    return {"val_loss": loss, "val_recon": rec, "val_kl": kl, "val_rms_db": db_range * mse**0.5}
 
 
 @torch.no_grad()

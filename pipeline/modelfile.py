@@ -23,6 +23,14 @@ lists and dicts. Keys:
     ``{"path", "n_clips", "names_sha256"}`` of the bank it was trained on.
 ``state_dict``
     the network weights.
+``sampler``
+    ``{"library": mixture, "categories": {name: mixture}}``, each mixture
+    ``{"weights" (K,), "means" (K, D), "covs" (K, D, D)}`` float64: the Gaussian mixtures
+    fitted to ``mu`` that ``generate`` samples from (:mod:`pipeline.sampler`); None in a
+    file saved before training ended.
+
+The training checkpoint ``MODEL.ckpt`` uses the same archive format
+(:func:`save_atomic`, :func:`read_archive`); its payload is in :mod:`pipeline.checkpoint`.
 """
 
 from __future__ import annotations
@@ -40,14 +48,9 @@ import torch
 
 from pipeline import __version__
 from pipeline.config import AudioSpec, Settings, settings_from_dict
-from pipeline.errors import (
-    ModelFileError,
-    OutputError,
-    ParameterError,
-    ShotsmithError,
-    TrainingError,
-)
+from pipeline.errors import ModelFileError, OutputError, ParameterError, ShotsmithError
 from pipeline.model import ShotVAE, build_model
+from pipeline.sampler import Mixture, check_mixture, fit_samplers
 
 FORMAT_VERSION = 2  # 2: spectra analysed after AudioSpec.analysis_pad of silence
 TOOL = "shotsmith"
@@ -181,24 +184,6 @@ def read_archive(path: Path, *, kind: str) -> tuple[dict[str, Any], str]:
     return payload, hashlib.sha256(data).hexdigest()
 
 
-def check_resumable(
-    ckpt: dict[str, Any], path: Path, *, settings: Settings, bank: dict[str, Any]
-) -> None:
-    """Refuse a checkpoint made with other audio or model settings, or from another bank."""
-    new = settings.to_dict()
-    for table in ("audio", "model"):
-        diff = [f"{table}.{k} is {new[table].get(k)!r} here but {v!r} in the checkpoint"
-                for k, v in ckpt["settings"][table].items() if new[table].get(k) != v]
-        if diff:
-            raise TrainingError(
-                f"{path}: cannot resume with different {table} settings ({'; '.join(diff)}); "
-                "pass the same settings, or train afresh without --resume"
-            )
-    if ckpt["bank"]["names_sha256"] != bank["names_sha256"]:
-        raise TrainingError(f"{path}: the bank {bank['path']} has changed since this "
-                            "checkpoint; train afresh without --resume")
-
-
 def model_payload(
     *,
     settings: Settings,
@@ -211,8 +196,13 @@ def model_payload(
     logvar: np.ndarray,
     split: dict[str, np.ndarray],
     bank: dict[str, Any],
+    samplers: Samplers | None = None,
 ) -> dict[str, Any]:
-    """The dict that :func:`save_atomic` writes as a model file."""
+    """The dict that :func:`save_atomic` writes as a model file.
+
+    ``samplers`` (the mixtures fitted to ``mu``) is written when training ends; a file
+    saved mid-training has none, and :meth:`ModelFile.samplers` fits them on load.
+    """
     return {
         "format": FORMAT_VERSION,
         "tool": TOOL,
@@ -229,7 +219,40 @@ def model_payload(
         "split": {k: torch.as_tensor(np.asarray(v, dtype=np.int64)) for k, v in split.items()},
         "bank": dict(bank),
         "state_dict": {k: v.detach().cpu().clone() for k, v in state_dict.items()},
+        "sampler": None if samplers is None else _samplers_payload(samplers),
     }
+
+
+Samplers = tuple[Mixture, dict[str, Mixture]]  # the library's mixture, one per category
+
+
+def _mixture_payload(mix: Mixture) -> dict[str, torch.Tensor]:
+    return {k: torch.as_tensor(v, dtype=torch.float64) for k, v in mix.to_arrays().items()}
+
+
+def _samplers_payload(samplers: Samplers) -> dict[str, Any]:
+    library, per_category = samplers
+    return {"library": _mixture_payload(library),
+            "categories": {c: _mixture_payload(m) for c, m in per_category.items()}}
+
+
+def _read_samplers(path: Path, raw: Any, dim: int, categories: list[str]) -> Samplers | None:
+    """The stored mixtures, checked (:func:`pipeline.sampler.check_mixture`); None if absent."""
+    if raw is None:
+        return None
+
+    def one(entry: Any, what: str) -> Mixture:
+        try:
+            return check_mixture(entry["weights"], entry["means"], entry["covs"], dim=dim)
+        except (ParameterError, TypeError, KeyError, IndexError) as exc:
+            raise ModelFileError(f"{path}: damaged sampler ({what}: {exc})") from None
+
+    if not isinstance(raw, dict) or not isinstance(raw.get("categories"), dict):
+        raise ModelFileError(f"{path}: damaged sampler (not a mapping of mixtures)")
+    per = {str(c): one(m, f"category {c}") for c, m in raw["categories"].items()}
+    if sorted(per) != sorted(categories):
+        raise ModelFileError(f"{path}: damaged sampler (its categories are not the model's)")
+    return one(raw.get("library"), "library"), per
 
 
 @dataclass
@@ -249,10 +272,18 @@ class ModelFile:
     split: dict[str, np.ndarray]
     bank: dict[str, Any]
     model: ShotVAE = field(repr=False)
+    stored_samplers: Samplers | None = field(default=None, repr=False)
 
     @property
     def audio(self) -> AudioSpec:
         return self.settings.audio
+
+    def samplers(self) -> Samplers:
+        """The mixtures fitted to the clips' codes (stored, or fitted now: a file saved
+        before training ended holds none; the fit is seeded, so both give the same)."""
+        if self.stored_samplers is None:
+            self.stored_samplers = fit_samplers(self.mu, self.clip_categories, seed=0)
+        return self.stored_samplers
 
     @property
     def latent_dim(self) -> int:
@@ -375,4 +406,5 @@ def load_model_file(path: str | Path) -> ModelFile:
         split=split,
         bank=dict(p.get("bank", {})),
         model=model,
+        stored_samplers=_read_samplers(path, p.get("sampler"), d, list(p["categories"])),
     )

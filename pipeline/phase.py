@@ -341,13 +341,15 @@ def reconstruct(
     -------
     y : np.ndarray [shape=(B, audio.n_samples)], float32; the attack at its first samples
     sc_db : np.ndarray [shape=(B,)]
-        Spectral convergence (dB) of the padded reconstruction against ``S``.
+        Spectral convergence (dB) of the kept clip (analysed with its pad again) against ``S``.
     """
     pad = audio.analysis_pad
     y, trace = _run(S, n_fft=audio.n_fft, hop_length=audio.hop_length,
                     length=audio.n_samples + pad, n_iter=n_iter, momentum=momentum, init=init,
                     seed=seed, jobs=jobs, track=False)
-    y = np.atleast_2d(y)
-    A = spectra.magnitude(y.astype(np.float64), n_fft=audio.n_fft, hop_length=audio.hop_length)
+    y = np.ascontiguousarray(np.atleast_2d(y)[:, pad:])
+    # measured on the clip as it is kept: anything reconstructed inside the pad is dropped
+    A = spectra.magnitude(spectra.pad_for_analysis(y.astype(np.float64), audio),
+                          n_fft=audio.n_fft, hop_length=audio.hop_length)
     sc_db = spectra.spectral_convergence_db(np.atleast_3d(S).reshape(A.shape), A)
-    return np.ascontiguousarray(y[:, pad:]), sc_db
+    return y, sc_db

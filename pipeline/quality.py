@@ -6,8 +6,9 @@ for audio when no learned embedding is at hand), all at :data:`DESCRIPTOR_SR`:
 
 * MFCC 0-12, mean and standard deviation over time (timbre and its motion;
   librosa.feature.mfcc, 40 mel bands, frames of 2048 with a hop of 512),
-* spectral centroid (log kHz) and flatness (log), mean and standard deviation
-  over the frames within 60 dB of the loudest (librosa.feature),
+* spectral centroid (log kHz) and flatness (log), mean and standard deviation,
+  all of these over the frames within 60 dB of the loudest (librosa.feature): what
+  lies below belongs to the decay descriptors,
 * decay: log of the time the frame RMS takes from its peak to fall for good
   below -20 dB and -40 dB re peak, and the level of the last 200 ms re peak (dB).
 
@@ -73,6 +74,7 @@ def describe(y: np.ndarray, sr: int) -> np.ndarray:
     frame_db = 10.0 * np.log10(np.maximum(power.mean(axis=0), 1e-20))
     env_db = frame_db - frame_db.max()
     active = env_db >= _ACTIVE_DB
+    mfcc = mfcc[:, active]
     centroid = librosa.feature.spectral_centroid(S=S, sr=DESCRIPTOR_SR)[0][active]
     flatness = librosa.feature.spectral_flatness(S=S, amin=1e-10)[0][active]
     log_centroid = np.log(np.maximum(centroid, 20.0) / 1000.0)

@@ -31,7 +31,6 @@ from pipeline.config import AudioSpec, RenderSpec
 from pipeline.errors import AudioError, OutputError, ParameterError
 from pipeline.finish import (  # noqa: F401 - re-exported: the finishing stage of rendering
     BS1770_BLOCK_S,
-    fade_curves,
     finish_audio,
     integrated_loudness,
 )

@@ -103,7 +103,8 @@ def plot_latent_map(
     ----------
     mu : np.ndarray [shape=(N, D)]
     categories : sequence of str or None, length N
-    prior_samples : np.ndarray [shape=(M, D)], drawn from N(0, I)
+    prior_samples : np.ndarray [shape=(M, D)], drawn as ``generate`` draws (the fitted
+        mixture by default)
     path : Path of the PNG (``LATENT_MAP_SIZE`` pixels)
     """
     mu = np.asarray(mu, dtype=np.float64)
@@ -128,7 +129,7 @@ def plot_latent_map(
     ax = fig.add_axes((0.09, 0.08, 0.62, 0.84))
     if len(Q):
         ax.scatter(Q[:, 0], Q[:, 1], s=6, c="0.55", alpha=0.18, linewidths=0,
-                   label=f"prior samples N(0, I) ({len(Q)})", zorder=1)
+                   label=f"samples as generate draws them ({len(Q)})", zorder=1)
     from matplotlib import colormaps
 
     names = sorted(set(labels), key=lambda c: (c == NO_CATEGORY, c))

@@ -214,3 +214,15 @@ def fit_samplers(mu: np.ndarray, categories: Sequence[str | None], *, seed: int 
         rows = np.array([c == cat for c in categories])
         per[cat] = fit_mixture(mu[rows], seed=seed)
     return fit_mixture(mu, seed=seed), per
+
+
+def draw_codes(library: Mixture, per_category: dict[str, Mixture], n: int, *,
+               near: str | None = None, temperature: float = 1.0,
+               rng: np.random.Generator | int | None = None) -> np.ndarray:
+    """``n`` codes from the library's mixture, or from category ``near``'s own."""
+    if near is None:
+        return sample_mixture(library, n, temperature=temperature, rng=rng)
+    if near not in per_category:
+        known = ", ".join(sorted(per_category)) or "none (its clips had no category folders)"
+        raise ParameterError(f"unknown category {near!r}; known categories: {known}")
+    return sample_mixture(per_category[near], n, temperature=temperature, rng=rng)

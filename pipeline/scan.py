@@ -17,6 +17,8 @@ from pathlib import Path
 
 import soundfile as sf
 
+from pipeline.errors import ParameterError
+
 # Extensions of container formats libsndfile reads. MP3 only where the linked
 # libsndfile has the MPEG codec (added in libsndfile 1.1.0, its CHANGELOG).
 AUDIO_EXTENSIONS = frozenset(
@@ -56,6 +58,21 @@ def is_hidden(name: str) -> bool:
 
 def is_audio_name(name: str) -> bool:
     return os.path.splitext(name)[1].lower() in AUDIO_EXTENSIONS
+
+
+def source_folder(source: str | Path) -> Path:
+    """``source`` as a Path (``~`` expanded), or a ParameterError if it is not a folder."""
+    src = Path(source).expanduser()
+    if not src.is_dir():
+        raise ParameterError(f"{source}: source folder not found" if not src.exists()
+                             else f"{source}: SOURCE must be a folder")
+    return src
+
+
+def is_inside(path: str | Path, folder: str | Path) -> bool:
+    """Whether ``path`` is ``folder`` or lies under it, links resolved."""
+    real, top = Path(path).expanduser().resolve(), Path(folder).expanduser().resolve()
+    return real == top or real.is_relative_to(top)
 
 
 def scan_folder(source: str | Path) -> ScanResult:

@@ -1,15 +1,20 @@
-"""Training: split, batches, schedule, validation, early stopping, checkpoints, resume.
+"""Training: a bank in, one model file out.
 
-The loop reads a :class:`~pipeline.dataset.SpectraDataset` over the bank's memory
-map through a ``DataLoader`` whose sampler is passed in (reseeded per epoch like
-``DistributedSampler``), and all file writing goes through two methods
-(``save_model``, ``save_checkpoint``), so ``torch.distributed`` can wrap it later
-(a sampler per rank, writing on rank 0) without a rewrite.
+The loop reads top to bottom in :func:`fit`:
 
-Files: the model file ``MODEL`` is rewritten atomically at every validation
-improvement (and at the end with the full history); the resumable checkpoint
-``MODEL.ckpt`` after every epoch and on Ctrl-C. It is removed when training ends
-normally.
+1. a fresh :class:`~pipeline.checkpoint.TrainState` (the split, the output template
+   started at the training mean) or the one restored from ``MODEL.ckpt``;
+2. each epoch, :func:`train_epoch` takes one AdamW step per batch of a ``DataLoader``
+   whose sampler is passed in (reseeded per epoch like ``DistributedSampler``), with
+   the learning rate and KL weight from the pure :func:`schedule`;
+3. :func:`validate` scores the held-out clips with their posterior means; an
+   improvement keeps the weights and the clips' codes (:func:`keep`) and rewrites the
+   model file; the checkpoint is rewritten every epoch and on Ctrl-C;
+4. at the end the model file gets the whole history and the checkpoint is removed.
+
+The loss is computed in one place, :func:`batch_loss`, for training and validation
+alike. Every file write goes through :class:`RunFiles`, which writes nothing when
+``enabled`` is false (the other ranks, when ``torch.distributed`` wraps this).
 """
 
 from __future__ import annotations
@@ -20,7 +25,8 @@ import shlex
 import signal
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
@@ -28,8 +34,15 @@ from typing import Any
 import numpy as np
 import torch
 
-from pipeline.bank import Bank, open_bank
-from pipeline.config import Settings, available_cores
+from pipeline.bank import Bank, open_bank, stored_settings
+from pipeline.checkpoint import (
+    Kept,
+    TrainState,
+    checkpoint_path,
+    load_checkpoint,
+    save_checkpoint,
+)
+from pipeline.config import Settings, TrainSpec, available_cores, choose_settings
 from pipeline.dataset import (
     EpochSampler,
     SpectraDataset,
@@ -38,54 +51,227 @@ from pipeline.dataset import (
     split_indices,
 )
 from pipeline.errors import OutputError, ParameterError, TrainingError
-from pipeline.model import (
-    build_model,
-    count_parameters,
-    encode_all,
-    evaluate,
-    init_template,
-    kl_weight_at,
-    lr_at,
-    vae_loss,
-)
-from pipeline.modelfile import (
-    FORMAT_VERSION,
-    TOOL,
-    check_resumable,
-    model_payload,
-    names_digest,
-    read_archive,
-    remove_stale_temporaries,
-    save_atomic,
-)
+from pipeline.model import build_model, count_parameters, encode_all, init_template, vae_loss
+from pipeline.modelfile import model_payload, names_digest, remove_stale_temporaries, save_atomic
+from pipeline.sampler import fit_samplers
 
-CHECKPOINT_SUFFIX = ".ckpt"
+__all__ = ["TrainSummary", "checkpoint_path", "kl_weight_at", "lr_at", "schedule", "train_model"]
+
 KEEP_FREED_BUFFERS = True  # train_model calls keep_freed_buffers() (measured: +16 % clips/s)
+Emit = Callable[[dict[str, Any]], None]
 
 
-def checkpoint_path(model_path: str | Path) -> Path:
-    p = Path(model_path)
-    return p.with_name(p.name + CHECKPOINT_SUFFIX)
+# --- the schedule (pure) ------------------------------------------------------------------
 
 
-# --- summary --------------------------------------------------------------------------
+def lr_at(
+    epoch: float, *, learning_rate: float, warmup_epochs: float, epochs: float,
+    min_lr_ratio: float,
+) -> float:
+    """Learning rate after ``epoch`` (fractional) epochs.
+
+    Linear warm-up from ``learning_rate * min_lr_ratio`` to ``learning_rate``, then
+    cosine decay back to ``learning_rate * min_lr_ratio`` at ``epochs`` (cosine
+    annealing without restarts, Loshchilov & Hutter 2017, "SGDR").
+    """
+    low = learning_rate * min_lr_ratio
+    if epoch < warmup_epochs:
+        return low + (learning_rate - low) * epoch / warmup_epochs
+    span = max(epochs - warmup_epochs, 1e-9)
+    t = min(max((epoch - warmup_epochs) / span, 0.0), 1.0)
+    return low + (learning_rate - low) * 0.5 * (1.0 + math.cos(math.pi * t))
+
+
+def kl_weight_at(epoch: float, *, beta: float, warmup_epochs: float) -> float:
+    """KL weight after ``epoch`` (fractional) epochs: 0 rising linearly to ``beta``.
+
+    KL cost annealing, Bowman et al. 2016 ("Generating Sentences from a
+    Continuous Space"): the encoder learns to carry information before the KL
+    term can pull every posterior onto the prior.
+    """
+    if warmup_epochs <= 0:
+        return float(beta)
+    return float(beta) * min(1.0, max(0.0, epoch / warmup_epochs))
+
+
+def schedule(epoch: float, t: TrainSpec) -> tuple[float, float]:
+    """``(learning rate, KL weight)`` after ``epoch`` (fractional) epochs of ``t``'s schedule."""
+    lr = lr_at(epoch, learning_rate=t.learning_rate, warmup_epochs=t.lr_warmup_epochs,
+               epochs=t.epochs, min_lr_ratio=t.min_lr_ratio)
+    return lr, kl_weight_at(epoch, beta=t.beta, warmup_epochs=t.kl_warmup_epochs)
+
+
+# --- one batch, one epoch, one validation pass ----------------------------------------------
+
+
+def batch_loss(
+    model: torch.nn.Module, x: torch.Tensor, *, kl_weight: float, free_bits: float,
+    loud_weight: float, calibrated: bool = False, sample: bool | None = None,
+) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
+    """The objective on one batch, ``(loss, recon, kl, x_hat)``: the only place it is computed.
+
+    ``sample`` as in :meth:`~pipeline.model.ShotVAE.forward` (default: a reparameterised
+    draw in training mode, the posterior mean in evaluation mode).
+    """
+    x_hat, mu, logvar, _ = model(x, sample=sample)
+    loss, rec, kl = vae_loss(x_hat, x, mu, logvar, kl_weight=kl_weight, free_bits=free_bits,
+                             loud_weight=loud_weight, calibrated=calibrated)
+    return loss, rec, kl, x_hat
+
+
+class _Diverged(Exception):
+    """The loss turned non-finite; :func:`train_model` reports it as a TrainingError."""
+
+
+@dataclass
+class Meter:
+    """Clips stepped through and the seconds spent in optimiser steps, this run."""
+
+    clips: int = 0
+    step_seconds: float = 0.0
+
+
+def train_epoch(
+    model: torch.nn.Module, opt: torch.optim.Optimizer, loader: torch.utils.data.DataLoader,
+    st: TrainState, t: TrainSpec, *, device: torch.device, stop: threading.Event,
+    meter: Meter, on_batch: Callable[[], None],
+) -> None:
+    """One optimiser step per batch of ``loader`` (the rest of epoch ``st.epoch``).
+
+    Returns early, before the next batch, once ``stop`` is set. ``st.sums`` and
+    ``st.clips_done`` advance with every batch, so a checkpoint can resume mid-epoch.
+    """
+    n_train = len(st.train_rows)
+    for x in loader:
+        if stop.is_set():
+            return
+        t0 = time.perf_counter()
+        lr, kl_weight = schedule(st.epoch + st.clips_done / n_train, t)
+        for group in opt.param_groups:
+            group["lr"] = lr
+        loss, rec, kl, _ = batch_loss(model, x.to(device, non_blocking=True), kl_weight=kl_weight,
+                                      free_bits=t.free_bits, loud_weight=t.loud_weight,
+                                      calibrated=t.decoder_variance == "calibrated")
+        if not torch.isfinite(loss):
+            raise _Diverged(f"the training loss became non-finite at epoch {st.epoch + 1}")
+        opt.zero_grad(set_to_none=True)
+        loss.backward()
+        opt.step()
+        st.sums = [s + len(x) * v for s, v in zip(st.sums, (loss.item(), rec.item(), kl.item()))]
+        st.clips_done += len(x)
+        meter.clips += len(x)
+        meter.step_seconds += time.perf_counter() - t0
+        on_batch()
+
+
+@torch.no_grad()
+def validate(
+    model: torch.nn.Module, spectra: np.ndarray, rows: np.ndarray, t: TrainSpec, *,
+    db_range: float, device: torch.device, batch_size: int = 128,
+) -> dict[str, float]:
+    """Per-clip losses of ``spectra[rows]`` at the full KL weight ``beta``, z = posterior mean.
+
+    Rows are read in chunks (the bank may be a memory map). ``val_rms_db`` is the
+    unweighted RMS error of the [0, 1] spectrogram times ``db_range``.
+    """
+    model.eval()
+    sums, n = np.zeros(4), 0
+    for i in range(0, len(rows), batch_size):
+        x = torch.from_numpy(np.asarray(spectra[rows[i : i + batch_size]], dtype=np.float32))
+        x = x.to(device)
+        loss, rec, kl, x_hat = batch_loss(model, x, kl_weight=t.beta, free_bits=0.0,
+                                          loud_weight=t.loud_weight, sample=False,
+                                          calibrated=t.decoder_variance == "calibrated")
+        mse = (x_hat - x).pow(2).mean()
+        sums += len(x) * np.array([loss.item(), rec.item(), kl.item(), mse.item()])
+        n += len(x)
+    model.train()
+    loss, rec, kl, mse = (float(v) for v in sums / max(n, 1))
+    return {"val_loss": loss, "val_recon": rec, "val_kl": kl, "val_rms_db": db_range * mse**0.5}
+
+
+def keep(model: torch.nn.Module, spectra: np.ndarray, device: torch.device) -> Kept:
+    """The current weights (CPU copies) and every bank clip's posterior under them."""
+    weights = {k: v.detach().cpu().clone() for k, v in model.state_dict().items()}
+    mu, logvar = encode_all(model, spectra, device=device)
+    return Kept(weights, mu, logvar)
+
+
+# --- files ----------------------------------------------------------------------------------
+
+
+@dataclass
+class RunFiles:
+    """Every file a run writes: the model file and the checkpoint beside it (both atomic).
+
+    With ``enabled`` false every call does nothing (a ``torch.distributed`` rank other than 0).
+    """
+
+    model_path: Path
+    settings: Settings
+    bank: Bank
+    bank_info: dict[str, Any]  # path, n_clips, names_sha256
+    enabled: bool = True
+
+    @property
+    def checkpoint(self) -> Path:
+        return checkpoint_path(self.model_path)
+
+    def save_model(self, st: TrainState, kept: Kept, *, final: bool = False) -> None:
+        """The kept weights and codes with the history so far: what later commands load.
+
+        The final save also carries the sampler fitted to the codes (the fit takes a
+        second or so, too long for every improvement; a file saved earlier gets it fitted
+        when it is loaded).
+        """
+        if not self.enabled:
+            return
+        cats = [c.get("category") for c in self.bank.clips]
+        samplers = fit_samplers(kept.mu, cats, seed=0) if final else None
+        save_atomic(model_payload(
+            settings=self.settings, state_dict=kept.weights, history=st.history, best=st.best,
+            clip_names=self.bank.names, clip_categories=cats, mu=kept.mu, logvar=kept.logvar,
+            split={"train": st.train_rows, "val": st.val_rows}, bank=self.bank_info,
+            samplers=samplers), self.model_path)
+
+    def save_checkpoint(self, st: TrainState, model: torch.nn.Module,
+                        opt: torch.optim.Optimizer, kept: Kept | None) -> None:
+        if not self.enabled:
+            return
+        dev = next(model.parameters()).device
+        cuda = torch.cuda.get_rng_state(dev) if dev.type == "cuda" else None
+        save_checkpoint(self.checkpoint, settings=self.settings, bank=self.bank_info, state=st,
+                        model_state=model.state_dict(), optimizer_state=opt.state_dict(),
+                        kept=kept, rng={"torch": torch.get_rng_state(), "cuda": cuda})
+
+    def remove_checkpoint(self) -> None:
+        if self.enabled:
+            self.checkpoint.unlink(missing_ok=True)
+
+
+# --- the run --------------------------------------------------------------------------------
 
 
 @dataclass
 class TrainSummary:
-    """What a training run did. Losses are per clip: recon summed over bins x frames,
-    KL summed over latent dimensions (nats); ``val_rms_db`` is the RMS error in dB."""
+    """What a training run did; ``to_dict`` is the ``--json`` summary (no NaN in it).
 
-    model: str
-    checkpoint: str | None
+    Losses are per clip: recon summed over bins x frames, KL summed over latent
+    dimensions (nats); ``best_val_rms_db`` is the RMS error in dB. ``model`` is None
+    (and the ``best_*`` fields too) while no epoch has finished: no model file exists.
+    """
+
+    model: str | None  # the model file, when one exists
+    preset: str  # where the settings came from (a preset name or file)
+    checkpoint: str | None  # the checkpoint to resume from, when the run was interrupted
     stopped: str  # "early stop", "max epochs", "interrupted"
     epochs: int  # completed in total, resumed runs included
     epochs_this_run: int
     best_epoch: int
-    best_val_loss: float
-    best_val_recon: float
-    best_val_kl: float
-    best_val_rms_db: float
+    best_val_loss: float | None
+    best_val_recon: float | None
+    best_val_kl: float | None
+    best_val_rms_db: float | None
     seconds: float  # this run
     clips_per_second: float  # training clips / this run's wall time (validation, saving included)
     train_clips_per_second: float  # training clips / time in optimiser steps only
@@ -100,10 +286,241 @@ class TrainSummary:
         return asdict(self)
 
 
-# --- the loop -------------------------------------------------------------------------
+def resume_command(bank_dir: Path, model_path: Path, settings: Settings) -> str:
+    """The exact command that continues this run."""
+    m, t = settings.model, settings.train
+    parts = [
+        "shotsmith", "train", str(bank_dir), "--model", str(model_path),
+        "--preset", settings.preset, "--epochs", str(t.epochs),
+        "--latent-dim", str(m.latent_dim), "--beta", repr(t.beta), "--seed", str(t.seed),
+        "--resume",
+    ]
+    return " ".join(shlex.quote(p) for p in parts)
+
+
+def make_optimizer(model: torch.nn.Module, t: TrainSpec) -> torch.optim.AdamW:
+    """AdamW with no weight decay on biases and the template (common practice)."""
+    groups: tuple[list, list] = ([], [])
+    for name, param in model.named_parameters():
+        groups[param.ndim < 2 or name == "template"].append(param)
+    return torch.optim.AdamW([{"params": groups[0], "weight_decay": t.weight_decay},
+                              {"params": groups[1], "weight_decay": 0.0}], lr=t.learning_rate)
+
+
+def fresh_state(model: torch.nn.Module, bank: Bank, t: TrainSpec, device) -> TrainState:
+    """A new run: the seeded stratified split, the template at the training clips' mean."""
+    cats = [c.get("category") for c in bank.clips]
+    train_rows, val_rows = split_indices(cats, val_fraction=t.val_fraction, seed=t.seed)
+    init_template(model, mean_spectrogram(bank.spectra, train_rows).to(device))
+    return TrainState(train_rows=train_rows, val_rows=val_rows)
+
+
+def fit(
+    model: torch.nn.Module, opt: torch.optim.Optimizer, st: TrainState, kept: Kept | None,
+    sampler: EpochSampler, files: RunFiles, *, t: TrainSpec, db_range: float,
+    device: torch.device, stop: threading.Event, emit: Emit, meter: Meter,
+) -> tuple[str, Kept | None]:
+    """Run epochs until ``t.epochs``, early stopping or ``stop``; ``(why it stopped, kept)``."""
+    spectra = files.bank.spectra
+    loader = make_loader(SpectraDataset(spectra, st.train_rows), sampler,
+                         batch_size=t.batch_size, device=device)
+    # no held-out clip (tiny bank or val_fraction 0): validate on the training clips
+    val_rows = st.val_rows if len(st.val_rows) else st.train_rows
+    n_train, start = len(st.train_rows), st.epoch
+    n_batches = math.ceil(n_train / t.batch_size)
+    no_early_stop_before = max(t.kl_warmup_epochs, t.lr_warmup_epochs)  # the warm-ups
+
+    def on_batch() -> None:
+        done, e = st.clips_done, st.epoch
+        emit({"event": "batch", "epoch": e + 1, "epochs": t.epochs,
+              "batch": math.ceil(done / t.batch_size), "batches": n_batches,
+              "train_loss": st.sums[0] / done, "recon": st.sums[1] / done,
+              "kl": st.sums[2] / done,
+              "val_loss": st.history[-1]["val_loss"] if st.history else None,
+              "eta_seconds": ((t.epochs - e) * n_train - done) * meter.step_seconds / meter.clips})
+
+    while st.epoch < t.epochs:
+        if (st.best is not None and st.since_best >= t.patience
+                and st.epoch >= no_early_stop_before):
+            return "early stop", kept
+        epoch_t0 = time.perf_counter()
+        sampler.set_epoch(st.epoch, start=st.clips_done)
+        train_epoch(model, opt, loader, st, t, device=device, stop=stop, meter=meter,
+                    on_batch=on_batch)
+        st.seconds += time.perf_counter() - epoch_t0
+        if stop.is_set():
+            files.save_checkpoint(st, model, opt, kept)
+            return "interrupted", kept
+
+        val = validate(model, spectra, val_rows, t, db_range=db_range, device=device)
+        if not math.isfinite(val["val_loss"]):
+            raise _Diverged(f"the validation loss became non-finite at epoch {st.epoch + 1}")
+        done = max(st.clips_done, 1)
+        lr, kl_weight = schedule(st.epoch + 1, t)
+        row = {"epoch": st.epoch + 1, "train_loss": st.sums[0] / done,
+               "train_recon": st.sums[1] / done, "train_kl": st.sums[2] / done, **val,
+               "lr": lr, "kl_weight": kl_weight, "seconds": time.perf_counter() - epoch_t0}
+        st.history.append(row)
+        improved = st.best is None or val["val_loss"] < st.best["val_loss"]
+        if improved:
+            st.best, st.since_best = {"epoch": st.epoch + 1, **val}, 0
+            kept = keep(model, spectra, device)
+            files.save_model(st, kept)
+        else:
+            st.since_best += 1
+        st.epoch, st.clips_done, st.sums = st.epoch + 1, 0, [0.0, 0.0, 0.0]
+        files.save_checkpoint(st, model, opt, kept)
+        per_epoch = sum(h["seconds"] for h in st.history[start:]) / (st.epoch - start)
+        emit({"event": "epoch", "epoch": st.epoch, "epochs": t.epochs,
+              "train_loss": row["train_loss"], "val_loss": val["val_loss"],
+              "recon": val["val_recon"], "kl": val["val_kl"], "val_rms_db": val["val_rms_db"],
+              "lr": lr, "improved": improved, "best_val_loss": st.best["val_loss"],
+              "seconds": row["seconds"], "eta_seconds": per_epoch * (t.epochs - st.epoch)})
+    return "max epochs", kept
+
+
+def finish(files: RunFiles, st: TrainState, kept: Kept) -> None:
+    """After training: the model file gets the kept weights and codes with the whole
+    history, and the checkpoint is no longer needed."""
+    files.save_model(st, kept, final=True)
+    files.remove_checkpoint()
+
+
+def train_model(
+    bank_dir: str | Path,
+    model_path: str | Path,
+    settings: Settings | None = None,
+    *,
+    resume: bool = False,
+    progress: Emit | None = None,
+    device: str = "auto",
+    interrupt: threading.Event | None = None,
+    overwrite: bool = False,
+) -> TrainSummary:
+    """Train the VAE on a bank and write the model file.
+
+    Parameters
+    ----------
+    bank_dir : path
+        A bank made by ``ingest``; its audio spec replaces ``settings.audio``.
+    model_path : path
+        The model file to write; the checkpoint goes to ``model_path + ".ckpt"``.
+    settings : Settings, optional
+        The ``model`` and ``train`` tables are used; all tables go into the model file.
+        Default: the settings the bank was made with (its preset).
+    resume : bool
+        Continue from the checkpoint (same model settings and bank required). The
+        ``train`` table of ``settings`` applies from there on (``epochs`` may grow).
+    progress : callable, optional
+        Receives dicts with ``event`` ("start", "batch", "epoch"), ``epoch`` (1-based),
+        ``epochs``, ``train_loss``, ``val_loss``, ``recon``, ``kl``, ``eta_seconds``, ...
+    device : str
+        "auto" (CUDA when present), "cpu", "cuda", ...
+    interrupt : threading.Event, optional
+        Set it to stop after the current batch and save the checkpoint. When None,
+        Ctrl-C (SIGINT) in the main thread does this; a second Ctrl-C aborts at once.
+    overwrite : bool
+        Replace an existing model file instead of refusing.
+
+    Returns
+    -------
+    TrainSummary
+        ``stopped == "interrupted"`` after an interrupt: the checkpoint was saved and
+        ``resume_command`` continues the run.
+
+    Raises
+    ------
+    TrainingError
+        A loss that turned non-finite (the last good model file is kept), or a
+        checkpoint that does not fit the settings or the bank.
+    OutputError
+        The model file exists (without ``overwrite`` or ``resume``) or its folder does not.
+    """
+    started = time.perf_counter()
+    bank_dir, model_path = Path(bank_dir), Path(model_path)
+    bank = open_bank(bank_dir)
+    if len(bank) == 0:
+        raise TrainingError(f"{bank_dir}: the bank holds no clips")
+    if settings is None:
+        settings, _ = choose_settings(None, stored_settings(bank_dir))
+    settings = settings.replace(audio=bank.audio)
+    files = RunFiles(model_path, settings, bank, {
+        "path": str(bank_dir.resolve()), "n_clips": len(bank),
+        "names_sha256": names_digest(bank.names)})
+    _check_outputs(files, resume=resume, overwrite=overwrite)
+    dev = pick_device(device)
+    for path in (model_path, files.checkpoint):  # left by a run that was killed while saving
+        remove_stale_temporaries(path)
+    t = settings.train
+    threads = available_cores() if dev.type == "cpu" else torch.get_num_threads()
+    with _run_environment(dev, threads, interrupt) as stop:
+        torch.manual_seed(t.seed)
+        model = build_model(settings.audio, settings.model).to(dev)
+        opt = make_optimizer(model, t)
+        kept = None
+        if resume:
+            ckpt = load_checkpoint(files.checkpoint, settings=settings, bank=files.bank_info)
+            model.load_state_dict(ckpt.model_state)
+            opt.load_state_dict(ckpt.optimizer_state)
+            opt.param_groups[0]["weight_decay"] = t.weight_decay  # this run's settings win
+            st, kept = ckpt.state, ckpt.kept
+            torch.set_rng_state(ckpt.rng["torch"])
+            if dev.type == "cuda" and ckpt.rng.get("cuda") is not None:
+                torch.cuda.set_rng_state(ckpt.rng["cuda"], dev)
+        else:
+            st = fresh_state(model, bank, t, dev)
+        info = {"n_train": len(st.train_rows), "n_val": len(st.val_rows), "device": str(dev),
+                "threads": threads, "parameters": count_parameters(model)}
+        emit = progress or (lambda d: None)
+        emit({"event": "start", "epoch": st.epoch, "epochs": t.epochs, **info})
+        start_epoch, meter = st.epoch, Meter()
+        audio = settings.audio
+        try:
+            stopped, kept = fit(model, opt, st, kept, EpochSampler(len(st.train_rows), seed=t.seed),
+                                files, t=t, db_range=audio.db_ceiling - audio.db_floor,
+                                device=dev, stop=stop, emit=emit, meter=meter)
+        except _Diverged as exc:
+            kept_note = (f"the last good model {model_path} is kept" if st.best is not None
+                         else "no model was written")
+            raise TrainingError(f"{model_path}: {exc}; {kept_note} "
+                                "(try a lower learning_rate or beta)") from None
+        if stopped != "interrupted":
+            finish(files, st, kept)
+    seconds = time.perf_counter() - started
+    best = st.best or {}
+    return TrainSummary(
+        model=str(model_path) if st.best is not None else None, preset=settings.preset,
+        checkpoint=str(files.checkpoint) if stopped == "interrupted" else None,
+        stopped=stopped, epochs=st.epoch, epochs_this_run=st.epoch - start_epoch,
+        best_epoch=best.get("epoch", 0), best_val_loss=best.get("val_loss"),
+        best_val_recon=best.get("val_recon"), best_val_kl=best.get("val_kl"),
+        best_val_rms_db=best.get("val_rms_db"), seconds=seconds,
+        clips_per_second=meter.clips / seconds if seconds > 0 else 0.0,
+        train_clips_per_second=(meter.clips / meter.step_seconds
+                                if meter.step_seconds > 0 else 0.0),
+        resume_command=(resume_command(bank_dir, model_path, settings)
+                        if stopped == "interrupted" else None),
+        **info)
+
+
+# --- the edges: checks, device, threads, Ctrl-C ---------------------------------------------
+
+
+def _check_outputs(files: RunFiles, *, resume: bool, overwrite: bool) -> None:
+    model_path, ckpt_path = files.model_path, files.checkpoint
+    if not model_path.parent.is_dir():
+        raise OutputError(f"{model_path}: folder {model_path.parent} does not exist")
+    if model_path.is_dir():
+        raise OutputError(f"{model_path}: is a folder; give a file name for the model")
+    if not resume and not overwrite and (model_path.exists() or ckpt_path.exists()):
+        hint = " or --resume to continue its training" if ckpt_path.exists() else ""
+        raise OutputError(f"{model_path}: already exists; pass --overwrite to replace it{hint}")
+    if resume and not ckpt_path.exists():
+        raise TrainingError(f"{ckpt_path}: no checkpoint to resume (train without --resume)")
 
 
 def pick_device(device: str) -> torch.device:
+    """``"auto"`` is CUDA when present, else the CPU; anything else must exist here."""
     if device == "auto":
         return torch.device("cuda" if torch.cuda.is_available() else "cpu")
     try:
@@ -133,87 +550,15 @@ def keep_freed_buffers() -> bool:
     return bool(mallopt(m_mmap_threshold, 32 << 20)) and bool(mallopt(m_trim_threshold, 2**31 - 1))
 
 
-def resume_command(bank_dir: Path, model_path: Path, settings: Settings) -> str:
-    """The exact command that continues this run."""
-    m, t = settings.model, settings.train
-    parts = [
-        "shotsmith", "train", str(bank_dir), "--model", str(model_path),
-        "--preset", settings.preset, "--epochs", str(t.epochs),
-        "--latent-dim", str(m.latent_dim), "--beta", repr(t.beta), "--seed", str(t.seed),
-        "--resume",
-    ]
-    return " ".join(shlex.quote(p) for p in parts)
+@contextmanager
+def _run_environment(
+    dev: torch.device, threads: int, interrupt: threading.Event | None
+) -> Iterator[threading.Event]:
+    """Threads, allocator, Ctrl-C and torch's global RNG for one run; the caller's are restored.
 
-
-def _cpu_copy(state: dict[str, torch.Tensor]) -> dict[str, torch.Tensor]:
-    return {k: v.detach().cpu().clone() for k, v in state.items()}
-
-
-def train_model(
-    bank_dir: str | Path,
-    model_path: str | Path,
-    settings: Settings,
-    *,
-    resume: bool = False,
-    progress: Callable[[dict[str, Any]], None] | None = None,
-    device: str = "auto",
-    interrupt: threading.Event | None = None,
-    overwrite: bool = False,
-) -> TrainSummary:
-    """Train the VAE on a bank and write the model file.
-
-    Parameters
-    ----------
-    bank_dir : path
-        A bank made by ``ingest``; its audio spec replaces ``settings.audio``.
-    model_path : path
-        The model file to write; the checkpoint goes to ``model_path + ".ckpt"``.
-    settings : Settings
-        The ``model`` and ``train`` tables are used; all tables go into the model file.
-    resume : bool
-        Continue from the checkpoint (same model settings and bank required). The
-        ``train`` table of ``settings`` applies from there on (``epochs`` may grow).
-    progress : callable, optional
-        Receives dicts with ``event`` ("start", "batch", "epoch"), ``epoch`` (1-based),
-        ``epochs``, ``train_loss``, ``val_loss``, ``recon``, ``kl``, ``eta_seconds``, ...
-    device : str
-        "auto" (CUDA when present), "cpu", "cuda", ...
-    interrupt : threading.Event, optional
-        Set it to stop after the current batch and save the checkpoint. When None,
-        Ctrl-C (SIGINT) in the main thread does this; a second Ctrl-C aborts at once.
-    overwrite : bool
-        Replace an existing model file instead of refusing.
-
-    Raises
-    ------
-    TrainingError
-        A loss that turned non-finite (the last good model file is kept), or a
-        checkpoint that does not fit the settings or the bank.
-    OutputError
-        The model file exists (without ``overwrite`` or ``resume``) or its folder does not.
+    Yields the event that stops training after the current batch: ``interrupt``, or one
+    that the first Ctrl-C sets (a second Ctrl-C raises KeyboardInterrupt at once).
     """
-    t0 = time.perf_counter()
-    bank_dir, model_path = Path(bank_dir), Path(model_path)
-    bank = open_bank(bank_dir)
-    if len(bank) == 0:
-        raise TrainingError(f"{bank_dir}: the bank holds no clips")
-    ckpt_path = checkpoint_path(model_path)
-    if not model_path.parent.is_dir():
-        raise OutputError(f"{model_path}: folder {model_path.parent} does not exist")
-    if model_path.is_dir():
-        raise OutputError(f"{model_path}: is a folder; give a file name for the model")
-    if not resume and not overwrite and (model_path.exists() or ckpt_path.exists()):
-        hint = " or --resume to continue its training" if ckpt_path.exists() else ""
-        raise OutputError(f"{model_path}: already exists; pass --overwrite to replace it{hint}")
-    if resume and not ckpt_path.exists():
-        raise TrainingError(f"{ckpt_path}: no checkpoint to resume (train without --resume)")
-    dev = pick_device(device)
-    for path in (model_path, ckpt_path):  # left by a run that was killed while saving
-        remove_stale_temporaries(path)
-    old_threads = torch.get_num_threads()
-    threads = available_cores() if dev.type == "cpu" else old_threads
-    if KEEP_FREED_BUFFERS:
-        keep_freed_buffers()
     stop = interrupt if interrupt is not None else threading.Event()
     old_handler = None
     if interrupt is None and threading.current_thread() is threading.main_thread():
@@ -224,203 +569,17 @@ def train_model(
             stop.set()
 
         old_handler = signal.signal(signal.SIGINT, on_sigint)
+    old_threads = torch.get_num_threads()
+    if KEEP_FREED_BUFFERS:
+        keep_freed_buffers()
+    forked = []
+    if dev.type == "cuda":
+        forked = [dev.index if dev.index is not None else torch.cuda.current_device()]
     try:
         torch.set_num_threads(threads)
-        # training seeds torch's global generator; leave the caller's state untouched
-        forked = []
-        if dev.type == "cuda":
-            forked = [dev.index if dev.index is not None else torch.cuda.current_device()]
-        with torch.random.fork_rng(devices=forked):
-            run = _Run(bank, bank_dir, model_path, settings.replace(audio=bank.audio), dev)
-            return run.train(resume=resume, emit=progress or (lambda d: None), stop=stop, t0=t0,
-                             threads=threads)
+        with torch.random.fork_rng(devices=forked):  # training seeds torch's global generator
+            yield stop
     finally:
         torch.set_num_threads(old_threads)
         if old_handler is not None:
             signal.signal(signal.SIGINT, old_handler)
-
-
-class _Run:
-    """One training run; every file write goes through ``save_model`` or ``save_checkpoint``."""
-
-    def __init__(self, bank: Bank, bank_dir: Path, model_path: Path, settings: Settings, dev):
-        self.bank, self.bank_dir, self.model_path, self.settings, self.dev = (
-            bank, bank_dir, model_path, settings, dev)
-        self.ckpt_path = checkpoint_path(model_path)
-        self.t = t = settings.train
-        torch.manual_seed(t.seed)
-        self.model = build_model(settings.audio, settings.model).to(dev)
-        # no weight decay on biases, norms and the template (common practice)
-        groups: tuple[list, list] = ([], [])
-        for name, param in self.model.named_parameters():
-            groups[param.ndim < 2 or name == "template"].append(param)
-        self.opt = torch.optim.AdamW(
-            [{"params": groups[0], "weight_decay": t.weight_decay},
-             {"params": groups[1], "weight_decay": 0.0}], lr=t.learning_rate)
-        self.bank_info = {"path": str(bank_dir.resolve()), "n_clips": len(bank),
-                          "names_sha256": names_digest(bank.names)}
-        self.best_state: dict | None = None
-        self.best_codes: tuple[np.ndarray, np.ndarray] | None = None
-
-    def _fresh(self) -> dict[str, Any]:
-        cats = [c.get("category") for c in self.bank.clips]
-        train, val = split_indices(cats, val_fraction=self.t.val_fraction, seed=self.t.seed)
-        init_template(self.model, mean_spectrogram(self.bank.spectra, train).to(self.dev))
-        return {"epoch": 0, "clips_done": 0, "sums": [0.0, 0.0, 0.0], "history": [], "best": None,
-                "since_best": 0, "seconds": 0.0,
-                "split": {"train": torch.as_tensor(train), "val": torch.as_tensor(val)}}
-
-    def _restore(self) -> dict[str, Any]:
-        ckpt, _ = read_archive(self.ckpt_path, kind="checkpoint")
-        check_resumable(ckpt, self.ckpt_path, settings=self.settings, bank=self.bank_info)
-        self.model.load_state_dict(ckpt["model_state"])
-        self.opt.load_state_dict(ckpt["optimizer_state"])
-        self.opt.param_groups[0]["weight_decay"] = self.t.weight_decay  # this run's settings win
-        self.best_state = ckpt["best_state"]
-        if ckpt["best_mu"] is not None:
-            self.best_codes = (ckpt["best_mu"].numpy(), ckpt["best_logvar"].numpy())
-        torch.set_rng_state(ckpt["rng"]["torch"])
-        if self.dev.type == "cuda" and ckpt["rng"].get("cuda") is not None:
-            torch.cuda.set_rng_state(ckpt["rng"]["cuda"], self.dev)
-        return ckpt["state"]
-
-    def save_model(self) -> None:
-        """The kept weights and their codes, with the history so far (atomic)."""
-        st, (mu, logvar) = self.st, self.best_codes
-        cats = [c.get("category") for c in self.bank.clips]
-        save_atomic(model_payload(
-            settings=self.settings, state_dict=self.best_state, history=st["history"],
-            best=st["best"], clip_names=self.bank.names, clip_categories=cats, mu=mu,
-            logvar=logvar, split={k: v.numpy() for k, v in st["split"].items()},
-            bank=self.bank_info), self.model_path)
-
-    def save_checkpoint(self) -> None:
-        """Everything needed to continue exactly: weights, optimiser, RNG, position (atomic)."""
-        cuda = torch.cuda.get_rng_state(self.dev) if self.dev.type == "cuda" else None
-        codes = self.best_codes
-        save_atomic({
-            "format": FORMAT_VERSION, "tool": TOOL, "kind": "checkpoint",
-            "settings": self.settings.to_dict(), "bank": self.bank_info, "state": self.st,
-            "rng": {"torch": torch.get_rng_state(), "cuda": cuda},
-            "model_state": _cpu_copy(self.model.state_dict()),
-            "optimizer_state": self.opt.state_dict(), "best_state": self.best_state,
-            "best_mu": None if codes is None else torch.as_tensor(codes[0]),
-            "best_logvar": None if codes is None else torch.as_tensor(codes[1]),
-        }, self.ckpt_path)
-
-    def _lr(self, p: float) -> float:
-        t = self.t
-        return lr_at(p, learning_rate=t.learning_rate, warmup_epochs=t.lr_warmup_epochs,
-                     epochs=t.epochs, min_lr_ratio=t.min_lr_ratio)
-
-    def _step(self, x: torch.Tensor, p: float) -> tuple[float, float, float]:
-        t = self.t
-        for g in self.opt.param_groups:
-            g["lr"] = self._lr(p)
-        x_hat, mu, logvar, _ = self.model(x)
-        kl_w = kl_weight_at(p, beta=t.beta, warmup_epochs=t.kl_warmup_epochs)
-        loss, rec, kl = vae_loss(x_hat, x, mu, logvar, kl_weight=kl_w, free_bits=t.free_bits,
-                                 loud_weight=t.loud_weight)
-        if not torch.isfinite(loss):
-            self._fail(f"the training loss became non-finite at epoch {int(p) + 1}")
-        self.opt.zero_grad(set_to_none=True)
-        loss.backward()
-        self.opt.step()
-        return loss.item(), rec.item(), kl.item()
-
-    def _fail(self, what: str) -> None:
-        kept = (f"the last good model {self.model_path} is kept" if self.model_path.exists()
-                else "no model was written")
-        hint = "try a lower learning_rate or beta"
-        raise TrainingError(f"{self.model_path}: {what}; {kept} ({hint})")
-
-    def train(self, *, resume: bool, emit, stop, t0: float, threads: int) -> TrainSummary:
-        t, st = self.t, None
-        self.st = st = self._restore() if resume else self._fresh()
-        rows = st["split"]["train"].numpy(), st["split"]["val"].numpy()
-        n_train, n_val = len(rows[0]), len(rows[1])
-        train_data = SpectraDataset(self.bank.spectra, rows[0])
-        # no held-out clip (tiny bank or val_fraction 0): validate on the training clips
-        val_spectra = np.asarray(self.bank.spectra[rows[1] if n_val else rows[0]])
-        sampler = EpochSampler(n_train, seed=t.seed)
-        loader = make_loader(train_data, sampler, batch_size=t.batch_size, device=self.dev)
-        audio = self.settings.audio
-        db_range = audio.db_ceiling - audio.db_floor
-        start, step_s, seen = st["epoch"], 0.0, 0
-        n_batches = math.ceil(n_train / t.batch_size)
-        min_epochs = max(t.kl_warmup_epochs, t.lr_warmup_epochs)  # no early stop in warm-up
-        info = {"n_train": n_train, "n_val": n_val, "device": str(self.dev), "threads": threads,
-                "parameters": count_parameters(self.model)}
-        emit({"event": "start", "epoch": start, "epochs": t.epochs, **info})
-
-        def summary(stopped: str, ckpt: bool) -> TrainSummary:
-            b, secs = st["best"] or {}, time.perf_counter() - t0
-            cmd = resume_command(self.bank_dir, self.model_path, self.settings) if ckpt else None
-            return TrainSummary(
-                model=str(self.model_path), checkpoint=str(self.ckpt_path) if ckpt else None,
-                stopped=stopped, epochs=st["epoch"], epochs_this_run=st["epoch"] - start,
-                best_epoch=b.get("epoch", 0), best_val_loss=b.get("val_loss", math.nan),
-                best_val_recon=b.get("val_recon", math.nan), best_val_kl=b.get("val_kl", math.nan),
-                best_val_rms_db=b.get("val_rms_db", math.nan), seconds=secs,
-                clips_per_second=seen / secs if secs > 0 else 0.0,
-                train_clips_per_second=seen / step_s if step_s > 0 else 0.0,
-                resume_command=cmd, **info)
-
-        while st["epoch"] < t.epochs:
-            e = st["epoch"]
-            if st["best"] is not None and st["since_best"] >= t.patience and e >= min_epochs:
-                break
-            epoch_t0 = time.perf_counter()
-            sampler.set_epoch(e, start=st["clips_done"])
-            for x in loader:
-                if stop.is_set():
-                    break
-                b0 = time.perf_counter()
-                p = e + st["clips_done"] / n_train
-                values = self._step(x.to(self.dev, non_blocking=True), p)
-                st["sums"] = [s + len(x) * v for s, v in zip(st["sums"], values)]
-                st["clips_done"] += len(x)
-                seen += len(x)
-                step_s += time.perf_counter() - b0
-                done = st["clips_done"]
-                emit({"event": "batch", "epoch": e + 1, "epochs": t.epochs,
-                      "batch": math.ceil(done / t.batch_size), "batches": n_batches,
-                      "train_loss": st["sums"][0] / done, "recon": st["sums"][1] / done,
-                      "kl": st["sums"][2] / done,
-                      "val_loss": st["history"][-1]["val_loss"] if st["history"] else None,
-                      "eta_seconds": ((t.epochs - e) * n_train - done) * step_s / seen})
-            st["seconds"] += time.perf_counter() - epoch_t0
-            if stop.is_set():
-                self.save_checkpoint()
-                return summary("interrupted", True)
-            val = evaluate(self.model, val_spectra, beta=t.beta, loud_weight=t.loud_weight,
-                           db_range=db_range, device=self.dev)
-            if not math.isfinite(val["val_loss"]):
-                self._fail(f"the validation loss became non-finite at epoch {e + 1}")
-            done = max(st["clips_done"], 1)
-            kl_w = kl_weight_at(e + 1, beta=t.beta, warmup_epochs=t.kl_warmup_epochs)
-            row = {"epoch": e + 1, "train_loss": st["sums"][0] / done,
-                   "train_recon": st["sums"][1] / done, "train_kl": st["sums"][2] / done, **val,
-                   "lr": self._lr(e + 1), "kl_weight": kl_w,
-                   "seconds": time.perf_counter() - epoch_t0}
-            st["history"].append(row)
-            improved = st["best"] is None or val["val_loss"] < st["best"]["val_loss"]
-            if improved:
-                st["best"], st["since_best"] = {"epoch": e + 1, **val}, 0
-                self.best_state = _cpu_copy(self.model.state_dict())
-                self.best_codes = encode_all(self.model, self.bank.spectra, device=self.dev)
-                self.save_model()
-            else:
-                st["since_best"] += 1
-            st.update(epoch=e + 1, clips_done=0, sums=[0.0, 0.0, 0.0])
-            self.save_checkpoint()
-            per_epoch = sum(h["seconds"] for h in st["history"][start:]) / (e + 1 - start)
-            emit({"event": "epoch", "epoch": e + 1, "epochs": t.epochs,
-                  "train_loss": row["train_loss"], "val_loss": val["val_loss"],
-                  "recon": val["val_recon"], "kl": val["val_kl"], "val_rms_db": val["val_rms_db"],
-                  "lr": row["lr"], "improved": improved, "best_val_loss": st["best"]["val_loss"],
-                  "seconds": row["seconds"], "eta_seconds": per_epoch * (t.epochs - e - 1)})
-        stopped = "max epochs" if st["epoch"] >= t.epochs else "early stop"
-        self.save_model()  # the kept weights and codes, now with the whole history
-        self.ckpt_path.unlink(missing_ok=True)
-        return summary(stopped, False)

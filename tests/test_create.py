@@ -250,3 +250,19 @@ def test_cli_generate_json_and_render_options(model, tmp_path):
     for f in _files(tmp_path / "cli"):
         assert sf.info(f).subtype == "PCM_16"
     _check_outputs(tmp_path / "cli", peak_db=-6.0)
+    # the manifest names the model's preset (it said "custom"), with the options applied
+    manifest = json.loads((tmp_path / "cli" / "manifest.json").read_text())
+    stored = load_settings("tiny").render
+    assert manifest["settings"]["preset"] == "tiny"
+    assert manifest["settings"]["render"] == {**stored.__dict__, "bit_depth": "16",
+                                              "peak_db": -6.0, "iterations": 8}
+
+
+def test_render_settings_are_typed(model, tmp_path):
+    from pipeline.config import RenderSpec
+    from pipeline.create import generate_sounds
+
+    with pytest.raises(ParameterError, match="render must be a RenderSpec"):
+        generate_sounds(model, tmp_path / "g", n=1, render={"iterations": 1})
+    s = generate_sounds(model, tmp_path / "g", n=1, seed=0, render=RenderSpec(iterations=2))
+    assert json.loads(Path(s["manifest"]).read_text())["render"]["iterations"] == 2

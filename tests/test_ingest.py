@@ -429,7 +429,7 @@ def test_jobs_2_gives_the_same_bank_as_jobs_1(small_library, tmp_path):
 
 def test_bank_inside_or_equal_to_source_is_refused(small_library):
     for bank in (small_library / "bank", small_library, small_library / "kicks" / "b"):
-        with pytest.raises(ParameterError, match="--bank must not be inside SOURCE"):
+        with pytest.raises(ParameterError, match="must not be inside the source folder"):
             ingest_folder(small_library, bank, TINY, jobs=1)
     assert not (small_library / "bank").exists()
 

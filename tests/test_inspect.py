@@ -296,7 +296,7 @@ def test_cli_prints_the_table_and_json(trained, tmp_path):
 def test_plain_autoencoder_matches_the_prior_worse_than_a_vae(tmp_path):
     # Kingma & Welling 2014: the KL term pulls the aggregate posterior toward N(0, I);
     # with beta = 0 (a plain autoencoder) nothing does, so the codes drift off the prior.
-    from pipeline.latent import prior_match
+    from pipeline.latent_health import prior_match
     from pipeline.modelfile import load_model_file
     from pipeline.train import train_model
 

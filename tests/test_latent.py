@@ -10,6 +10,7 @@ from scipy import stats
 from scipy.spatial.transform import Rotation, Slerp
 
 from pipeline import latent
+from pipeline import latent_health as health
 from pipeline.errors import ParameterError
 
 
@@ -142,8 +143,8 @@ def test_seeded_reproducibility():
         assert not np.array_equal(f(7), f(8))
     codes = np.random.default_rng(0).standard_normal((50, 6))
     cats = ["a"] * 25 + ["b"] * 25
-    r1 = latent.health_report(codes, None, cats, n_samples=300, rng=3)
-    r2 = latent.health_report(codes, None, cats, n_samples=300, rng=3)
+    r1 = health.health_report(codes, None, cats, n_samples=300, rng=3)
+    r2 = health.health_report(codes, None, cats, n_samples=300, rng=3)
     assert r1 == r2
 
 
@@ -225,31 +226,31 @@ def test_active_units_counts_dimensions_that_vary():
     d, k = 10, 3
     mu = rng.standard_normal((400, d))
     mu[:, :k] = 0.7  # constant in k dimensions
-    au = latent.active_units(mu)
+    au = health.active_units(mu)
     assert (au["active"], au["total"]) == (d - k, d)
     mu[:, k] = rng.normal(0, np.sqrt(0.003), 400)  # varies, but below the threshold
-    assert latent.active_units(mu)["active"] == d - k - 1
-    assert latent.active_units(np.zeros((20, 4)))["rating"] == "poor"
+    assert health.active_units(mu)["active"] == d - k - 1
+    assert health.active_units(np.zeros((20, 4)))["rating"] == "poor"
 
 
 def test_prior_match_of_prior_draws_is_near_zero():
     rng = np.random.default_rng(9)
-    pm = latent.prior_match(rng.standard_normal((5000, 8)))
+    pm = health.prior_match(rng.standard_normal((5000, 8)))
     assert pm["kl_gaussian_to_prior"] < 0.01 and pm["mean_norm"] < 0.1
     assert pm["rating"] == "good"
     # Mixture moments: means with variance 0.5 plus posteriors of variance 0.5
     # make an aggregate posterior of variance 1, i.e. the prior.
     mu = rng.normal(0, np.sqrt(0.5), (5000, 8))
-    pm = latent.prior_match(mu, np.full_like(mu, np.log(0.5)))
+    pm = health.prior_match(mu, np.full_like(mu, np.log(0.5)))
     assert pm["kl_gaussian_to_prior"] < 0.01
-    assert latent.prior_match(mu)["kl_gaussian_to_prior"] > 0.5  # means alone are too narrow
+    assert health.prior_match(mu)["kl_gaussian_to_prior"] > 0.5  # means alone are too narrow
 
 
 def test_prior_match_of_shifted_squeezed_cluster_is_large():
     rng = np.random.default_rng(10)
     d, s = 8, 0.1
     mu = rng.normal(3.0, s, (4000, d))
-    pm = latent.prior_match(mu)
+    pm = health.prior_match(mu)
     # Closed form for N(3·1, s² I) against N(0, I): ½ D (s² + 9 - 1 - log s²).
     expected = 0.5 * d * (s**2 + 9.0 - 1.0 - np.log(s**2))
     assert pm["kl_gaussian_to_prior"] == pytest.approx(expected, rel=0.02)
@@ -268,19 +269,19 @@ def test_prior_match_kl_agrees_with_monte_carlo():
     z = q.rvs(size=100000, random_state=12)
     diff = q.logpdf(z) - p.logpdf(z)
     se = diff.std(ddof=1) / np.sqrt(len(diff))
-    kl = latent.prior_match(mu)["kl_gaussian_to_prior"]
+    kl = health.prior_match(mu)["kl_gaussian_to_prior"]
     assert abs(kl - diff.mean()) < 4 * se
 
 
 def test_holes_near_five_percent_when_codes_fill_the_prior():
     rng = np.random.default_rng(13)
     codes = rng.standard_normal((2000, 6))
-    h = latent.holes(latent.sample_prior(20000, 6, rng=14), codes)
+    h = health.holes(latent.sample_prior(20000, 6, rng=14), codes)
     assert 0.035 < h["share"] < 0.065, h["share"]
     assert h["expected_share"] == pytest.approx(0.05) and h["rating"] == "good"
     # Two tight clusters far apart leave the prior's middle empty.
     clusters = np.concatenate([rng.normal(-3, 0.1, (1000, 6)), rng.normal(3, 0.1, (1000, 6))])
-    h = latent.holes(latent.sample_prior(5000, 6, rng=15), clusters)
+    h = health.holes(latent.sample_prior(5000, 6, rng=15), clusters)
     assert h["share"] > 0.9 and h["rating"] == "poor"
 
 
@@ -302,7 +303,7 @@ def test_category_balance_total_variation(library, prior, tv):
     rng = np.random.default_rng(17)
     samples = np.concatenate([rng.normal(0, 0.5, (prior[0], 3)) + [-4, 0, 0],
                               rng.normal(0, 0.5, (prior[1], 3)) + [4, 0, 0]])
-    cb = latent.category_balance(samples, codes, cats)
+    cb = health.category_balance(samples, codes, cats)
     assert cb["total_variation"] == pytest.approx(tv, abs=1e-12)
     shares = {s["category"]: s for s in cb["shares"]}
     assert shares["a"]["prior_share"] == pytest.approx(prior[0] / sum(prior))
@@ -312,9 +313,9 @@ def test_category_balance_total_variation(library, prior, tv):
 
 def test_category_balance_symmetric_library_under_the_prior():
     codes, cats = _two_clusters(60, 60)
-    cb = latent.category_balance(latent.sample_prior(4000, 3, rng=18), codes, cats)
+    cb = health.category_balance(latent.sample_prior(4000, 3, rng=18), codes, cats)
     assert cb["total_variation"] < 0.03
-    cb = latent.category_balance(np.zeros((5, 3)), codes[:3], [None, None, None])
+    cb = health.category_balance(np.zeros((5, 3)), codes[:3], [None, None, None])
     assert cb["shares"] == [{"category": "(none)", "prior_share": 1.0, "library_share": 1.0}]
 
 
@@ -322,8 +323,9 @@ def test_health_report_is_json_with_every_key():
     rng = np.random.default_rng(19)
     mu, logvar = rng.standard_normal((120, 8)), rng.normal(-3, 0.1, (120, 8))
     cats = ["kick", "snare", "hat", None] * 30
-    rep = latent.health_report(mu, logvar, cats, n_samples=500, rng=0)
-    assert set(rep) == {"active_units", "prior_match", "category_balance", "holes"}
+    rep = health.health_report(mu, logvar, cats, n_samples=500, rng=0)
+    assert set(rep) == {"active_units", "prior_match", "category_balance", "holes", "sampler"}
+    assert rep.pop("sampler") == "500 samples from the prior N(0, I)"
     json.dumps(rep, allow_nan=False)
     for part in rep.values():
         assert part["verdict"].startswith(part["rating"] + ": ")
@@ -332,9 +334,9 @@ def test_health_report_is_json_with_every_key():
 
 def test_bad_input_is_a_parameter_error():
     with pytest.raises(ParameterError, match="mu"):
-        latent.active_units(np.zeros(5))
+        health.active_units(np.zeros(5))
     with pytest.raises(ParameterError, match="non-finite"):
-        latent.prior_match(np.array([[0.0, np.nan], [1.0, 2.0]]))
+        health.prior_match(np.array([[0.0, np.nan], [1.0, 2.0]]))
     with pytest.raises(ParameterError, match="latent size"):
         latent.nearest_codes(np.zeros((2, 3)), np.zeros((4, 2)))
     with pytest.raises(ParameterError, match="shape"):

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 import torch
 
@@ -14,7 +13,6 @@ from pipeline.model import (
     init_template,
     kl_per_dim,
     kl_term,
-    kl_weight_at,
     recon_error,
     reparameterize,
     vae_loss,
@@ -103,19 +101,7 @@ def test_gradients_reach_the_encoder_through_the_sample():
     assert model.enc_in[0].weight.grad.abs().sum() > 0
 
 
-# ------------------------------------------------------------------ warm-up, free bits
-
-
-def test_kl_warmup_rises_from_zero_to_beta():
-    # Bowman et al. 2016: weight 0 at the start, non-decreasing, beta after warm-up
-    beta, warm = 0.7, 10
-    w = [kl_weight_at(e, beta=beta, warmup_epochs=warm) for e in np.linspace(0, 30, 301)]
-    assert w[0] == 0.0
-    assert all(b >= a for a, b in zip(w, w[1:]))
-    assert kl_weight_at(warm, beta=beta, warmup_epochs=warm) == beta
-    assert kl_weight_at(25.5, beta=beta, warmup_epochs=warm) == beta
-    assert kl_weight_at(5, beta=beta, warmup_epochs=warm) == pytest.approx(beta / 2)
-    assert kl_weight_at(0, beta=beta, warmup_epochs=0) == beta
+# ------------------------------------------------------------------------ free bits
 
 
 def test_free_bits_give_no_kl_gradient_below_the_floor():

@@ -149,6 +149,42 @@ def test_newer_format_asks_for_an_upgrade(trained, tmp_path):
               rf"\({FORMAT_VERSION}\); upgrade shotsmith")
 
 
+def test_the_fitted_sampler_is_stored_and_loads_with_weights_only(trained):
+    from pipeline.sampler import fit_samplers
+
+    model, _ = trained
+    p = payload(model)  # torch.load(weights_only=True): plain tensors and containers only
+    assert sorted(p["sampler"]["categories"]) == ["one", "three", "two"]
+    assert p["sampler"]["library"]["covs"].dtype == torch.float64
+    mf = load_model_file(model)
+    library, per = mf.samplers()
+    again, _ = fit_samplers(mf.mu, mf.clip_categories, seed=0)  # what train stored
+    np.testing.assert_allclose(library.means, again.means)
+    assert set(per) == set(mf.categories)
+
+
+def test_a_file_saved_mid_training_gets_its_sampler_fitted_on_load(trained, tmp_path):
+    p = payload(trained[0])
+    stored = p["sampler"]["library"]["means"].numpy()
+    p["sampler"] = None
+    torch.save(p, tmp_path / "mid.pt")
+    library, _ = load_model_file(tmp_path / "mid.pt").samplers()
+    np.testing.assert_allclose(library.means, stored)  # the fit is seeded: the same mixture
+
+
+@pytest.mark.parametrize(("damage", "why"), [
+    (lambda s: s["library"]["weights"].fill_(float("nan")), "non-finite"),
+    (lambda s: s["library"]["covs"].neg_(), "positive definite"),
+    (lambda s: s["categories"].pop("one"), "categories are not the model's"),
+    (lambda s: s["library"].pop("means"), "library"),
+])
+def test_a_crafted_sampler_is_refused_in_one_line(trained, tmp_path, damage, why):
+    p = payload(trained[0])
+    damage(p["sampler"])
+    torch.save(p, tmp_path / "bad.pt")
+    _one_line(tmp_path / "bad.pt", f"damaged sampler.*{why}")
+
+
 def test_older_format_asks_to_train_again(trained, tmp_path):
     # format 1 spectra had no analysis pad: a network trained on them reads the wrong frames
     p = payload(trained[0])

@@ -54,8 +54,11 @@ def test_resynth_writes_every_usable_file_and_records_sc(source, tmp_path):
     assert s["written"] == 4 and s["skipped"] == 2 and s["ignored"] == 1 and s["failed"] == 0
     manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
     files = sorted(p.name for p in out.glob("*.wav"))
-    assert files == ["hat__kick.wav", "kick__kick.wav", "open hat é.wav", "tone.wav"]
+    assert files == ["hat_kick.wav", "kick_kick.wav", "open hat é.wav", "tone.wav"]
     assert sorted(it["file"] for it in manifest["items"]) == files
+    # the clips are named as a bank names them (ingest of the same folder)
+    assert sorted(it["name"] for it in manifest["items"]) == [
+        "hat/kick", "kick/kick", "open hat é", "tone"]
     assert manifest["complete"] is True and manifest["model"] is None
     assert manifest["settings"]["preset"] == "tiny" and manifest["render"]["iterations"] == 16
     reasons = {s["path"]: s["reason"] for s in manifest["skipped"]}
@@ -75,16 +78,21 @@ def test_recorded_sc_is_that_of_the_reconstruction(source, tmp_path):
     # Griffin-Lim output (the WAV is normalised afterwards, so undo its measured gain)
     from pipeline.ingest import load_clip
 
-    resynth_folder(source, tmp_path / "o", SETTINGS, jobs=1)
+    # no fades: a PGHI start reconstructs this tone to about -48 dB, where even a 20 ms
+    # fade would dominate the comparison
+    plain = load_settings("tiny", {"render": {"iterations": 16, "fade_in_ms": 0.0,
+                                              "fade_out_ms": 0.0, "bit_depth": "32f"}})
+    resynth_folder(source, tmp_path / "o", plain, jobs=1)
     item = next(it for it in json.loads((tmp_path / "o" / "manifest.json").read_text())["items"]
                 if it["file"] == "tone.wav")
-    a = SETTINGS.audio
+    a = plain.audio
     S = spectra.unit_to_magnitude(spectra.clip_to_unit(load_clip(source / "tone.flac", a), a), a)
     y, _ = sf.read(tmp_path / "o" / "tone.wav")
     y = y / 10 ** (item["gain_db"] / 20)
     sc = spectra.spectral_convergence_db(S, spectra.magnitude(
         spectra.pad_for_analysis(y, a), n_fft=a.n_fft, hop_length=a.hop_length))
-    assert sc == pytest.approx(item["sc_db"], abs=0.5)  # fades and DC removal differ slightly
+    # the finished file has its DC removed: about 1 dB at this precision (-43 dB, 0.7 %)
+    assert sc == pytest.approx(item["sc_db"], abs=1.0)
 
 
 def test_parallel_decoding_gives_the_same_files(source, tmp_path):
@@ -96,7 +104,7 @@ def test_parallel_decoding_gives_the_same_files(source, tmp_path):
 
 def test_output_inside_source_is_refused(source):
     before = _tree_digest(source)
-    with pytest.raises(OutputError, match="must not be inside SOURCE"):
+    with pytest.raises(OutputError, match="must not be inside the source folder"):
         resynth_folder(source, source / "out", SETTINGS)
     assert _tree_digest(source) == before and not (source / "out").exists()
 

@@ -22,7 +22,7 @@ from badfiles import CLIP, EITHER, HIDDEN, build_corpus, tree_digest
 
 from pipeline import frontend, scan
 from pipeline.bank import REPORT_FILE, open_bank
-from pipeline.config import load_settings
+from pipeline.config import RenderSpec, load_settings
 from pipeline.errors import AudioError, ShotsmithError
 from pipeline.ingest import ingest_folder, load_clip
 
@@ -238,9 +238,9 @@ def test_interpolate_and_vary_with_odd_files_leave_them_alone(corpus, untrained_
     c = root / "long" / "hours long.wav"
     before = tree_digest(root)
     s = interpolate_sounds(untrained_model, [str(a), str(b), str(c)], tmp_path / "i", steps=3,
-                           seed=1, render={"iterations": 1})
+                           seed=1, render=RenderSpec(iterations=1))
     v = vary_sound(untrained_model, str(root / "names" / "line\nbreak.wav"), tmp_path / "v",
-                   n=2, seed=1, render={"iterations": 1})
+                   n=2, seed=1, render=RenderSpec(iterations=1))
     assert tree_digest(root) == before
     for summary, folder in ((s, tmp_path / "i"), (v, tmp_path / "v")):
         names = sorted(p.name for p in folder.iterdir())
@@ -315,7 +315,7 @@ def test_paths_that_are_not_utf8_reach_every_json_file(tmp_path, untrained_model
     assert report["source"] == str(src)  # a \udcXX escape that reads back as the same path
     resynth_folder(src, tmp_path / "re", TINY, jobs=1)
     v = vary_sound(untrained_model, str(odd), tmp_path / "v", n=1, seed=0,
-                   render={"iterations": 1})
+                   render=RenderSpec(iterations=1))
     manifest = json.loads((tmp_path / "v" / "manifest.json").read_text(encoding="utf-8"))
     assert manifest["items"][0]["sources"] == [str(odd)]
     assert Path(manifest["request"]["sound"]).is_file()

@@ -12,7 +12,7 @@ from modelfiles import model_dict, small_preset
 from typer.testing import CliRunner
 
 from pipeline.cli import app
-from pipeline.config import load_settings
+from pipeline.config import RenderSpec, load_settings
 
 runner = CliRunner()
 QUICK = ["--iterations", "2"]
@@ -131,12 +131,12 @@ def test_names_from_user_text_stay_inside_the_output_folder(tmp_path):
     out = tmp_path / "work" / "out"
     before = set(_all_files(tmp_path))
     for name in hostile:
-        vary_sound(model, name, out, n=1, seed=0, render={"iterations": 1})
+        vary_sound(model, name, out, n=1, seed=0, render=RenderSpec(iterations=1))
     jobs = tmp_path / "work" / "jobs.toml"
     labels = ["../../up", "/abs/path", "CON", "NUL", "..", "a/../../b", "C:\\x\\y", "lpt1.wav"]
     jobs.write_text("".join(f'[[job]]\nsounds = ["CON", "com1"]\nsteps = 2\nlabel = {lab!r}\n'
                             .replace("'", '"').replace("\\", "\\\\") for lab in labels))
-    interpolate_jobs(model, jobs, out, seed=0, render={"iterations": 1})
+    interpolate_jobs(model, jobs, out, seed=0, render=RenderSpec(iterations=1))
     new = set(_all_files(tmp_path)) - before - {jobs}
     assert new and all(p.parent == out for p in new), sorted(map(str, new))
     names = [p.name for p in new]

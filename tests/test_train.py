@@ -27,7 +27,7 @@ from pipeline.config import load_settings
 from pipeline.dataset import EpochSampler, SpectraDataset, split_indices
 from pipeline.errors import OutputError, TrainingError
 from pipeline.modelfile import load_model_file, read_archive
-from pipeline.train import checkpoint_path, lr_at, train_model
+from pipeline.train import checkpoint_path, kl_weight_at, lr_at, train_model
 
 TESTS = Path(__file__).resolve().parent
 
@@ -79,6 +79,18 @@ def test_lr_schedule_warms_up_then_follows_a_cosine():
     assert lr_at(60, **kw) == pytest.approx(1e-4)
     after = [lr_at(e, **kw) for e in np.linspace(5, 45, 81)]
     assert all(b <= a for a, b in zip(after, after[1:]))
+
+
+def test_kl_warmup_rises_from_zero_to_beta():
+    # Bowman et al. 2016: weight 0 at the start, non-decreasing, beta after warm-up
+    beta, warm = 0.7, 10
+    w = [kl_weight_at(e, beta=beta, warmup_epochs=warm) for e in np.linspace(0, 30, 301)]
+    assert w[0] == 0.0
+    assert all(b >= a for a, b in zip(w, w[1:]))
+    assert kl_weight_at(warm, beta=beta, warmup_epochs=warm) == beta
+    assert kl_weight_at(25.5, beta=beta, warmup_epochs=warm) == beta
+    assert kl_weight_at(5, beta=beta, warmup_epochs=warm) == pytest.approx(beta / 2)
+    assert kl_weight_at(0, beta=beta, warmup_epochs=0) == beta
 
 
 def test_epoch_sampler_order_depends_only_on_seed_and_epoch():
@@ -230,7 +242,7 @@ def test_a_non_finite_loss_stops_and_keeps_the_last_good_model(bank, tmp_path, m
 
     def turns_nan(*args, **kwargs):
         loss, rec, kl = real(*args, **kwargs)
-        calls[0] += 1
+        calls[0] += torch.is_grad_enabled()  # training steps only, not validation
         return (loss * float("nan") if calls[0] > 7 else loss), rec, kl
 
     monkeypatch.setattr(train_mod, "vae_loss", turns_nan)
@@ -306,6 +318,60 @@ def test_ctrl_c_stops_saves_and_prints_the_resume_command(bank, tmp_path):
     ckpt, _ = read_archive(checkpoint_path(model), kind="checkpoint")
     assert ckpt["state"]["epoch"] == summary["epochs"] >= 1
     load_model_file(model)
+
+
+def _cli_train_interrupted_at(monkeypatch, bank, model, epoch, *extra):
+    """``shotsmith train`` in-process, with a real SIGINT sent at batch 1 of ``epoch``."""
+    from modelfiles import small_preset
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    real = train_mod.train_model
+
+    def with_ctrl_c(*args, progress=None, **kwargs):
+        def on_event(d):
+            if d["event"] == "batch" and d["epoch"] == epoch and d["batch"] == 1:
+                os.kill(os.getpid(), signal.SIGINT)  # the handler train_model installs
+            progress(d)
+
+        return real(*args, progress=on_event, **kwargs)
+
+    monkeypatch.setattr(train_mod, "train_model", with_ctrl_c)
+    preset = small_preset(model.parent, latent_dim=8)
+    return CliRunner().invoke(app, ["train", str(bank), "--model", str(model), "--preset",
+                                    str(preset), "--epochs", "9", *extra])
+
+
+def _strict_json(text: str) -> dict:
+    def no_constants(name):
+        raise AssertionError(f"{name} in the JSON summary")
+
+    return json.loads(text, parse_constant=no_constants)
+
+
+def test_ctrl_c_in_the_first_epoch_exits_130_with_one_json_object_and_no_model(
+        bank, tmp_path, monkeypatch):
+    model = tmp_path / "m.pt"
+    result = _cli_train_interrupted_at(monkeypatch, bank, model, 1, "--json")
+    assert result.exit_code == 130, result.output
+    summary = _strict_json(result.stdout)  # one object, nothing else on stdout, no NaN
+    assert summary["stopped"] == "interrupted" and summary["epochs"] == 0
+    assert summary["model"] is None and not model.exists()  # says exactly what exists
+    assert summary["best_val_loss"] is None
+    assert summary["checkpoint"] == str(checkpoint_path(model)) and checkpoint_path(model).exists()
+    assert result.stderr.count("to resume:") == 1 and summary["resume_command"] in result.stderr
+
+
+def test_ctrl_c_later_names_the_kept_model_and_prints_the_resume_line_once(
+        bank, tmp_path, monkeypatch):
+    model = tmp_path / "m.pt"
+    result = _cli_train_interrupted_at(monkeypatch, bank, model, 2)
+    assert result.exit_code == 130, result.output
+    assert result.output.count("to resume:") == 1  # stdout and stderr together
+    assert f"model in {model}" in result.stdout and model.exists()
+    assert "interrupted during epoch 2" in result.stdout
+    assert load_model_file(model).best["epoch"] == 1
 
 
 # ------------------------------------------------------------------------ quality

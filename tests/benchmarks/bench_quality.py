@@ -126,11 +126,14 @@ def run(args) -> dict:
     root = corpus.build(log=lambda m: print(m, file=sys.stderr))
     lib = root / args.library
     work = root / "runs" / args.tag
-    if work.exists():
-        import shutil
+    import shutil
 
+    if work.exists() and not args.reuse:
         shutil.rmtree(work)
-    work.mkdir(parents=True)
+    work.mkdir(parents=True, exist_ok=True)
+    for old in work.glob("*"):  # rendered sets of an earlier evaluation
+        if old.is_dir() and old.name not in ("bank",):
+            shutil.rmtree(old)
     overrides = _overrides(args.set)
     overrides.setdefault("train", {}).setdefault("seed", args.seed)
     settings = load_settings(args.preset, overrides)
@@ -153,15 +156,24 @@ def run(args) -> dict:
     floor = fd(T)
     held_pred = quality.knn_classify(T, train_cats, H, k=5)
     held_recog = float(np.mean([p == c for p, c in zip(held_pred, held_cats)]))
+    held_per_cat = {c: float(np.mean([p == c for p, h in zip(held_pred, held_cats) if h == c]))
+                    for c in sorted(set(held_cats))}
 
     # train with the CLI's code path
     bank, model = work / "bank", work / "model.pt"
-    ingest_folder(lib / "train", bank, settings, jobs=2)
-    t0 = time.perf_counter()
-    summary = train_model(bank, model, settings, device="cpu")
-    train_s = time.perf_counter() - t0
-    log(f"trained {summary.epochs} epochs in {train_s:.0f} s ({summary.stopped}), "
-        f"{summary.train_clips_per_second:.0f} clips/s of steps")
+    if args.reuse and model.is_file():
+        trained = json.loads((work / "training.json").read_text())
+    else:
+        ingest_folder(lib / "train", bank, settings, jobs=2)
+        t0 = time.perf_counter()
+        summary = train_model(bank, model, settings, device="cpu")
+        trained = {"epochs": summary.epochs, "stopped": summary.stopped,
+                   "seconds": time.perf_counter() - t0,
+                   "clips_per_second": summary.train_clips_per_second}
+        (work / "training.json").write_text(json.dumps(trained))
+    train_s = trained["seconds"]
+    log(f"trained {trained['epochs']} epochs in {train_s:.0f} s ({trained['stopped']}), "
+        f"{trained['clips_per_second']:.0f} clips/s of steps")
     mf = load_model_file(model)
     audio, render = mf.audio, mf.settings.render
 
@@ -181,7 +193,9 @@ def run(args) -> dict:
     # resynthesis ceiling
     resynth_folder(lib / "heldout", work / "resynth", settings)
     ys, sr, _ = _wavs(work / "resynth")
-    resynth_fd = quality.frechet_distance(describe(ys, sr), H)
+    S_resynth = describe(ys, sr)
+    resynth_fd = quality.frechet_distance(S_resynth, H)
+    sets = {"train": T, "heldout": H, "recon": R, "resynth": S_resynth}
 
     # generate, with every sampler it offers
     results: dict = {}
@@ -193,6 +207,7 @@ def run(args) -> dict:
     for name, extra in samplers.items():
         generate_sounds(model, work / f"generate-{name}", n=2 * n, seed=7, **extra)
         G = describe(*_wavs(work / f"generate-{name}")[:2])
+        sets[f"generate_{name}"] = G
         g_pred = quality.knn_classify(T, train_cats, G, k=5)
         results[f"generate_{name}"] = {
             "fd": fd(G), "copy_ratio": quality.copy_ratio(G, T, H),
@@ -214,19 +229,21 @@ def run(args) -> dict:
     report = {
         "library": args.library, "preset": args.preset, "overrides": overrides,
         "tag": args.tag, "n_train": len(T), "n_heldout": n,
-        "sample_rate": audio.sample_rate, "epochs": summary.epochs,
-        "stopped": summary.stopped, "train_seconds": round(train_s, 1),
-        "train_clips_per_second": round(summary.train_clips_per_second, 1),
+        "sample_rate": audio.sample_rate, "epochs": trained["epochs"],
+        "stopped": trained["stopped"], "train_seconds": round(train_s, 1),
+        "train_clips_per_second": round(trained["clips_per_second"], 1),
         "floor_fd": floor, "resynth_fd": resynth_fd,
         "recon_sc_db_heldout": sc_held, "recon_sc_db_train": sc_train,
         "recon_lsd_db_heldout": lsd_held, "recon_lsd_db_train": lsd_train,
         "recon_fd": recon_fd, "recon_paired_ratio": recon_pair,
-        "heldout_recognition": held_recog, "near_recognition": per_cat,
+        "heldout_recognition": held_recog, "heldout_recognition_per_category": held_per_cat,
+        "near_recognition": per_cat,
         "near_recognition_mean": near_recog,
         "near_copy_ratio": float(np.median(results.pop("near_copy"))),
         **results,
     }
     (work / "quality.json").write_text(json.dumps(report, indent=1))
+    np.savez(work / "descriptors.npz", **sets)  # scaled descriptors, for a closer look
     return report
 
 
@@ -253,6 +270,8 @@ def print_report(r: dict) -> None:
     print(f"{'--near recognition (mean over categories)':44s} {r['near_recognition_mean']:9.2f} "
           f"{r['near_recognition_mean'] / hr:8.2f}")
     print("  per category: " + ", ".join(f"{k} {v:.2f}" for k, v in r["near_recognition"].items()))
+    print("  real held-out per category: " + ", ".join(
+        f"{k} {v:.2f}" for k, v in r["heldout_recognition_per_category"].items()))
     for k, v in r.items():
         if k.startswith("generate_"):
             print(f"{k + ' copy ratio':44s} {v['copy_ratio']:9.2f}")
@@ -270,6 +289,8 @@ def main() -> None:
                     help="a settings override, TOML value syntax (repeatable)")
     ap.add_argument("--tag", default="default")
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--reuse", action="store_true",
+                    help="evaluate the model this tag trained before, without training again")
     args = ap.parse_args()
     try:
         print_report(run(args))

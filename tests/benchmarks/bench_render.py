@@ -54,7 +54,7 @@ def main() -> None:
 
         t0 = time.perf_counter()
         generate_sounds(
-            model, tmp / "gen", n=args.n, seed=0, render={"iterations": render.iterations}
+            model, tmp / "gen", n=args.n, seed=0, render=render
         )
         total = time.perf_counter() - t0
 
