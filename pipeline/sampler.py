@@ -6,8 +6,16 @@ density is fitted to the codes instead (ex-post density estimation, Ghosh et al.
 2020, "From Variational to Deterministic Autoencoders"): a Gaussian mixture with
 full covariances, fitted by expectation-maximisation (Dempster, Laird & Rubin
 1977), the number of components chosen by the Bayesian information criterion
-(Schwarz 1978). ``generate`` samples from it; ``--near`` from the mixture fitted to
-that category's codes alone.
+(Schwarz 1978). ``generate`` samples from it.
+
+``--near`` samples a category's own mixture. A category has tens of codes, too few for
+even two full-covariance components, and one Gaussian over them puts most samples
+between its clips, where they decode to sounds of other categories (measured: closed
+hats came out as cymbals). So a category's mixture has one component at each of its
+codes, all sharing the category's covariance scaled by ``NEAR_BANDWIDTH``^2: a
+Gaussian kernel density estimate (Parzen 1962). The bandwidth was chosen by measurement
+on real drums (tests/benchmarks/bench_quality.py; DEVELOPERS.md): smaller ones drift
+toward copies of the clips, larger ones toward the single Gaussian.
 
 Small libraries give few codes per component, so every covariance is shrunk
 toward an isotropic one, as if ``SHRINK_POINTS`` extra points with the pooled
@@ -26,6 +34,7 @@ import numpy as np
 from pipeline.errors import ParameterError
 
 MAX_COMPONENTS = 8
+NEAR_BANDWIDTH = 0.4  # a category's kernels: this fraction of its codes' spread
 SHRINK_POINTS = 4.0
 POINTS_PER_PARAMETER_SET = 2  # a component needs about 2 (D + 1) codes of its own
 _LOG_2PI = float(np.log(2.0 * np.pi))
@@ -33,7 +42,8 @@ _LOG_2PI = float(np.log(2.0 * np.pi))
 
 @dataclass(frozen=True)
 class Mixture:
-    """A Gaussian mixture: ``weights (K,)``, ``means (K, D)``, ``covs (K, D, D)``."""
+    """A Gaussian mixture: ``weights (K,)``, ``means (K, D)``, ``covs (K, D, D)``, or
+    ``covs (1, D, D)`` for one covariance that every component shares."""
 
     weights: np.ndarray
     means: np.ndarray
@@ -67,7 +77,8 @@ def check_mixture(weights, means, covs, *, dim: int | None = None) -> Mixture:
         raise ParameterError(f"mixture shapes {w.shape}, {m.shape}, {c.shape} are not "
                              "(K,), (K, D), (K, D, D)")
     k, d = m.shape
-    if w.shape != (k,) or c.shape != (k, d, d) or (dim is not None and d != dim):
+    if (w.shape != (k,) or c.shape[1:] != (d, d) or c.shape[0] not in (1, k)
+            or (dim is not None and d != dim)):
         raise ParameterError(f"mixture shapes {w.shape}, {m.shape}, {c.shape} do not fit "
                              f"{k} components of dimension {dim or d}")
     if not (np.all(np.isfinite(w)) and np.all(np.isfinite(m)) and np.all(np.isfinite(c))):
@@ -90,8 +101,9 @@ def _component_logpdf(X: np.ndarray, means: np.ndarray, covs: np.ndarray) -> np.
     """``log N(x_i | m_k, C_k)``, shape ``(N, K)``."""
     n, d = X.shape
     out = np.empty((n, len(means)))
-    for k, (m, c) in enumerate(zip(means, covs)):
-        L = np.linalg.cholesky(c)
+    Ls = np.linalg.cholesky(covs)
+    for k, m in enumerate(means):
+        L = Ls[k if len(Ls) > 1 else 0]
         sol = np.linalg.solve(L, (X - m).T)  # (D, N)
         out[:, k] = -0.5 * (d * _LOG_2PI + np.sum(sol**2, axis=0)) - np.log(np.diag(L)).sum()
     return out
@@ -117,8 +129,9 @@ def sample_mixture(mix: Mixture, n: int, *, temperature: float = 1.0,
     rng = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
     comp = rng.choice(mix.n_components, size=int(n), p=mix.weights)
     eps = rng.standard_normal((int(n), mix.dim))
-    L = np.linalg.cholesky(mix.covs)  # (K, D, D)
-    return mix.means[comp] + temperature * np.einsum("nij,nj->ni", L[comp], eps)
+    L = np.linalg.cholesky(mix.covs)  # (K, D, D) or (1, D, D) shared
+    L = L[comp] if len(L) > 1 else np.broadcast_to(L, (int(n),) + L.shape[1:])
+    return mix.means[comp] + temperature * np.einsum("nij,nj->ni", L, eps)
 
 
 # --------------------------------------------------------------------------- fitting
@@ -204,16 +217,34 @@ def fit_mixture(codes: np.ndarray, *, max_components: int = MAX_COMPONENTS, seed
     return check_mixture(best.weights / best.weights.sum(), best.means, best.covs)
 
 
+def fit_kernels(codes: np.ndarray, *, bandwidth: float = NEAR_BANDWIDTH,
+                prior_var: float | None = None) -> Mixture:
+    """A Gaussian kernel density estimate as a mixture: one component at each code, all
+    sharing ``bandwidth^2`` times the codes' covariance (shrunk toward isotropic as in
+    :func:`fit_mixture`; a single code uses ``prior_var``, default 1, in every dimension)."""
+    X = np.asarray(codes, dtype=np.float64)
+    if X.ndim != 2 or len(X) == 0 or not np.all(np.isfinite(X)):
+        raise ParameterError(f"codes must be a finite (N, D) array with N >= 1, got {X.shape}")
+    n, d = X.shape
+    own = float(X.var(axis=0).mean()) if n > 1 else 0.0
+    iso = own if own > 0 else (prior_var or 1.0)
+    scatter = (X - X.mean(0)).T @ (X - X.mean(0))
+    cov = (scatter + SHRINK_POINTS * iso * np.eye(d)) / (n + SHRINK_POINTS)
+    return check_mixture(np.full(n, 1.0 / n), X, (bandwidth**2 * cov)[None])
+
+
 def fit_samplers(mu: np.ndarray, categories: Sequence[str | None], *, seed: int = 0
                  ) -> tuple[Mixture, dict[str, Mixture]]:
-    """The library's mixture and one per category (clips without a category only count
-    toward the library's)."""
+    """The library's mixture (:func:`fit_mixture`) and one per category (:func:`fit_kernels`;
+    clips without a category only count toward the library's)."""
     mu = np.asarray(mu, dtype=np.float64)
+    library = fit_mixture(mu, seed=seed)
+    pooled = float(mu.var(axis=0).mean()) if len(mu) > 1 else 1.0
     per = {}
     for cat in sorted({c for c in categories if c}):
         rows = np.array([c == cat for c in categories])
-        per[cat] = fit_mixture(mu[rows], seed=seed)
-    return fit_mixture(mu, seed=seed), per
+        per[cat] = fit_kernels(mu[rows], prior_var=pooled or 1.0)
+    return library, per
 
 
 def draw_codes(library: Mixture, per_category: dict[str, Mixture], n: int, *,

@@ -98,3 +98,29 @@ def test_crafted_mixtures_are_refused_in_one_line(weights, means, covs, match):
     with pytest.raises(ParameterError, match=match) as err:
         sampler.check_mixture(weights, means, covs)
     assert "\n" not in str(err.value)
+
+
+def test_category_kernels_sit_on_the_codes_with_a_shared_scaled_covariance(rng):
+    codes = rng.standard_normal((30, 5)) @ np.diag([3.0, 2.0, 1.0, 0.5, 0.2])
+    mix = sampler.fit_kernels(codes, bandwidth=0.4)
+    np.testing.assert_array_equal(mix.means, codes)
+    assert mix.covs.shape == (1, 5, 5) and np.allclose(mix.weights, 1 / 30)
+    # the shared covariance follows the codes' own spread (shrunk a little toward isotropic)
+    var = np.diag(mix.covs[0]) / 0.4**2
+    assert var[0] > 4 and var[-1] < 0.3 * var[0]
+    z = sampler.sample_mixture(mix, 50_000, rng=rng)
+    # a kernel mixture's covariance: the codes' (biased) covariance plus the kernels'
+    expected = np.cov(codes, rowvar=False, ddof=0) + mix.covs[0]
+    np.testing.assert_allclose(np.cov(z, rowvar=False), expected, atol=0.06 * expected.max())
+
+
+def test_tied_mixture_density_agrees_with_scikit_learn(rng):
+    # sklearn's covariance_type="tied" as the outside reference for a shared covariance
+    from sklearn.mixture import GaussianMixture
+
+    mix = sampler.fit_kernels(rng.standard_normal((12, 3)), bandwidth=0.5)
+    ref = GaussianMixture(n_components=12, covariance_type="tied")
+    ref.weights_, ref.means_, ref.covariances_ = mix.weights, mix.means, mix.covs[0]
+    ref.precisions_cholesky_ = np.linalg.inv(np.linalg.cholesky(mix.covs[0])).T
+    X = rng.standard_normal((200, 3)) * 2
+    np.testing.assert_allclose(sampler.log_density(mix, X), ref.score_samples(X), rtol=1e-10)
