@@ -319,7 +319,7 @@ def interpolate_jobs(
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """Many interpolations from one jobs file, rendered into one folder with one manifest."""
-    from pipeline.render import safe_name
+    from pipeline.outputs import safe_name
 
     jobs = read_jobs_file(jobs_file)
     mf = _load(model)

@@ -10,7 +10,6 @@ settings. SOURCE is only ever read.
 
 from __future__ import annotations
 
-import os
 import posixpath
 import sys
 import time
@@ -24,15 +23,16 @@ from typing import Any
 
 import numpy as np
 
-from pipeline import __version__
+from pipeline import __version__, files
 from pipeline.bank import (
+    BANK_FILES,
     INDEX_FILE,
     REPORT_FILE,
+    STAGING_FILE,
     BankWriter,
     RowFile,
     open_bank,
     read_json,
-    write_json_atomic,
 )
 from pipeline.config import AudioSpec, Settings, available_cores
 from pipeline.errors import AudioError, BankError, ParameterError, ShotsmithError
@@ -256,7 +256,8 @@ def ingest_folder(
     if progress:
         progress(done, total)
     bank.mkdir(parents=True, exist_ok=True)
-    staging_path = bank / f".ingest-staging-{os.getpid()}.npy"
+    files.remove_stale_temporaries(bank, BANK_FILES)  # what killed ingests left
+    staging_path = files.temp_path(bank / STAGING_FILE)
     staging = None
     decoded: dict[int, dict[str, Any]] = {}
     writer = None
@@ -323,7 +324,7 @@ def ingest_folder(
             "skipped": skipped,
         }
         if not clips:
-            write_json_atomic(bank / REPORT_FILE, report)
+            files.write_json_atomic(bank / REPORT_FILE, report)
             raise ShotsmithError(
                 f"no usable audio files in {source} ({len(skipped)} skipped, "
                 f"{scan.ignored} ignored; see {bank / REPORT_FILE})"
@@ -334,7 +335,7 @@ def ingest_folder(
         writer.commit(clips, settings_dict, report)
         writer = None
         seconds = report["seconds"] = round(time.perf_counter() - t0, 3)  # now with the write
-        write_json_atomic(bank / REPORT_FILE, report)
+        files.write_json_atomic(bank / REPORT_FILE, report)
     finally:
         if writer is not None:
             writer.abort()
