@@ -68,6 +68,23 @@ def label_stem(label: str, *, max_bytes: int = LABEL_MAX_BYTES) -> str:
     return f"{_cut(whole, max_bytes - 9)}~{digest}"
 
 
+def next_number(folder: str | Path, label: str) -> int:
+    """One past the highest ``N`` of the files ``<label>-N.wav`` in ``folder`` (0 if none):
+    where a new batch of numbered sounds starts, after the ones already there."""
+    pattern = re.compile(rf"^{re.escape(label_stem(label))}-(\d+)(?:-\d+)?\.wav$", re.IGNORECASE)
+    try:
+        names = os.listdir(folder)
+    except OSError:
+        return 0
+    return max((int(m[1]) + 1 for m in map(pattern.match, names) if m), default=0)
+
+
+def numbered(start: int, count: int, *, width: int) -> list[str]:
+    """Suffixes ``-0016``, ``-0017``... wide enough that names sort in number order."""
+    width = max(width, len(str(max(start + count - 1, 0))))
+    return [f"-{k:0{width}d}" for k in range(start, start + count)]
+
+
 # --- WAV files ---------------------------------------------------------------------------
 
 

@@ -150,6 +150,20 @@ def test_long_labels_keep_their_suffix_and_differ_by_a_hash_of_the_whole():
     assert sa != sb and sa[:-9] == sb[:-9] and sa[-9] == "~"
     assert len(sa.encode()) <= outputs.LABEL_MAX_BYTES
     assert outputs.label_stem(a) == sa  # the same label always gives the same name
+    assert outputs.numbered(8, 3, width=2) == ["-08", "-09", "-10"]
+    assert outputs.numbered(0, 101, width=2)[-1] == "-100" and outputs.numbered(0, 101, width=2)[
+        0] == "-000"
+
+
+def test_next_number_counts_after_the_files_already_there(tmp_path):
+    assert outputs.next_number(tmp_path, "generate") == 0
+    for name in ("generate-0000.wav", "generate-0007.wav", "generate-0003-2.wav", "other-0099.wav",
+                 "generate-x.wav"):
+        (tmp_path / name).write_bytes(b"")
+    assert outputs.next_number(tmp_path, "generate") == 8
+    long = "vary-" + "k" * 300
+    (tmp_path / f"{outputs.label_stem(long)}-04.wav").write_bytes(b"")
+    assert outputs.next_number(tmp_path, long) == 5
 
 
 # --- WAV tags ----------------------------------------------------------------------------------

@@ -175,6 +175,35 @@ def test_ctrl_c_during_generate_leaves_whole_wavs_and_a_true_manifest(model_file
     assert interrupted == trials
 
 
+@pytest.mark.slow
+def test_sigkill_during_generate_leaves_a_manifest_of_exactly_the_wavs(model_file, own_tmp):
+    """Killed at random moments, run after run into one folder: what the manifest loader reads
+    is exactly the WAVs present; the next run removes the temporaries, adds after what is
+    there, and ends with a folded manifest marked complete."""
+    from pipeline.create import generate_sounds
+
+    rng = np.random.default_rng(int(os.environ.get("SHOTSMITH_FAULT_SEED", "7")))
+    out, kills = own_tmp / "out", 0
+    for trial in range(LOOPS):
+        had = len(list(out.glob("*.wav"))) if out.exists() else 0
+        proc = _cli("generate", str(model_file), "--out", str(out), "-n", "2000",
+                    "--seed", str(trial))
+        assert _wait_for(lambda h=had: len(list(out.glob("*.wav"))) > h, proc)
+        time.sleep(float(rng.uniform(0.0, 1.0)))  # a batch of 4 takes about 0.1 s here
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGKILL)
+            kills += 1
+        out_text, err = proc.communicate(timeout=60)
+        why = f"trial {trial}, exit {proc.returncode}: {out_text[-800:]} {err[-1500:]}"
+        wavs = _check_outputs(out, folded=False)
+        assert len(wavs) > had, why
+    assert kills >= 1
+    done = generate_sounds(model_file, out, n=3, seed=99)
+    last = sorted(p.name for p in out.glob("*.wav"))[-3:]
+    assert done["files"] == last  # numbered after everything the killed runs left
+    _check_outputs(out, complete=True)
+
+
 _KILL_SCRIPT = """
 import importlib, os, signal, sys
 import numpy as np
@@ -379,7 +408,8 @@ def test_full_disk_during_generate_keeps_earlier_files(model_file, tmp_path, mon
         assert m["complete"] is False
     assert [r["run"] for r in m["runs"]] == [1, 2]
     # the next run into the folder folds what was left and goes on after it
-    generate_sounds(model_file, out, n=2, seed=3, overwrite=True)
+    again = generate_sounds(model_file, out, n=2, seed=3)["files"]
+    assert set(again).isdisjoint(wavs)
     _check_outputs(out, complete=True)
 
 
