@@ -150,6 +150,7 @@ class BankWriter:
         index = {
             "format": BANK_FORMAT,
             "tool": "shotsmith",
+            "source": report.get("source"),
             "audio": settings["audio"],
             "settings": settings,
             "shape": [len(clips), self.audio.n_bins, self.audio.n_frames],
@@ -213,3 +214,16 @@ def open_bank(path: Path) -> Bank:
         )
     return Bank(path, audio, index.get("settings", {}), index["clips"], spectra)
 
+
+def source_folder(path: str | Path) -> Path | None:
+    """The library folder a bank was made from (recorded by ingest), or None if unknown."""
+    path = Path(path)
+    for name in (INDEX_FILE, REPORT_FILE):
+        try:
+            data = json.loads((path / name).read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, ValueError):
+            continue
+        source = data.get("source") if isinstance(data, dict) else None
+        if isinstance(source, str) and source:
+            return Path(source)
+    return None

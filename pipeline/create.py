@@ -21,7 +21,7 @@ import numpy as np
 
 from pipeline import latent
 from pipeline.errors import ParameterError, ShotsmithError
-from pipeline.outputs import next_number, numbered
+from pipeline.outputs import next_number, numbered, refuse_library
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -106,6 +106,7 @@ def _render(
     from pipeline.config import spec_from_dict
     from pipeline.render import render_spectra
 
+    refuse_library(out, option="--out", model=mf)
     base = mf.settings.render.__dict__ | {k: v for k, v in (render or {}).items() if v is not None}
     render_spec = spec_from_dict(type(mf.settings.render), base, "render")
     for item, z, near in zip(items, Z, _nearest(mf, Z)):

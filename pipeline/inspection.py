@@ -258,10 +258,12 @@ def inspect_model(
     from pipeline import files, report
     from pipeline.latent import health_report, sample_prior
     from pipeline.modelfile import load_model_file
+    from pipeline.outputs import refuse_library
 
     out_dir, seed = Path(out_dir), 0 if seed is None else int(seed)
     _check_outputs(out_dir, overwrite)
     mf = load_model_file(Path(model_path))
+    refuse_library(out_dir, option="--out", model=mf, banks=[] if bank is None else [bank])
     bank_obj = None if bank is None else _open_matching_bank(Path(bank), mf)
     try:  # only once the inputs are known to be good
         out_dir.mkdir(parents=True, exist_ok=True)

@@ -1,10 +1,10 @@
-"""Output folders: safe unique names, tagged WAV files and the manifest.
+"""Output folders: safe unique names, tagged WAV files, the manifest, where outputs may go.
 
 :class:`OutputFolder` is the writer every command that writes audio uses: it creates and
 checks the folder, takes it for one run (a second run into the same folder at the same
 time is refused), removes what killed runs left, hands out names, writes each WAV whole
 (with RIFF INFO tags) and keeps the manifest (:mod:`pipeline.manifest`) exact at every
-moment.
+moment. :func:`refuse_library` keeps outputs out of the library a bank was made from.
 """
 
 from __future__ import annotations
@@ -356,3 +356,43 @@ class OutputFolder:
     def __exit__(self, kind, value, tb) -> None:
         self.close(complete=kind is None)
 
+
+# --- where outputs may go ----------------------------------------------------------------
+
+
+def _same_or_inside(path: Path, folder: Path) -> bool:
+    """``path`` is ``folder`` or below it, through symlinks, ``..`` and letter case."""
+    try:
+        st = folder.stat()
+    except OSError:  # the library is gone: nothing left to protect
+        return False
+    key = (st.st_dev, st.st_ino)
+    path = path.expanduser()
+    for chain in (Path(os.path.abspath(path)), path.resolve()):
+        for q in (chain, *chain.parents):
+            try:
+                s = q.stat()
+            except OSError:
+                continue
+            if (s.st_dev, s.st_ino) == key:
+                return True
+    return False
+
+
+def refuse_library(path: str | Path, *, option: str, model: Any = None,
+                   banks: Iterable[str | Path] = ()) -> None:
+    """Refuse an output ``path`` inside a library the tool knows of: the source folder of
+    each bank in ``banks`` and of the bank ``model`` (a loaded model file) was trained on.
+    The next ingest of that library would take the outputs for library sounds."""
+    from pipeline.bank import source_folder
+
+    banks = [Path(b) for b in banks]
+    bank_of_model = ((getattr(model, "bank", None) or {}).get("path")) if model else None
+    if isinstance(bank_of_model, str) and bank_of_model:
+        banks.append(Path(bank_of_model))
+    for bank in banks:
+        src = source_folder(bank)
+        if src is not None and _same_or_inside(Path(path), src):
+            raise OutputError(f"{path}: {option} must not be inside the library {src} (the "
+                              f"source of bank {bank}): the next ingest would take what is "
+                              "written there for library sounds")

@@ -58,6 +58,7 @@ from pipeline.modelfile import (
     remove_stale_temporaries,
     save_atomic,
 )
+from pipeline.outputs import refuse_library
 
 CHECKPOINT_SUFFIX = ".ckpt"
 KEEP_FREED_BUFFERS = True  # train_model calls keep_freed_buffers() (measured: +16 % clips/s)
@@ -202,6 +203,7 @@ def train_model(
         raise OutputError(f"{model_path}: folder {model_path.parent} does not exist")
     if model_path.is_dir():
         raise OutputError(f"{model_path}: is a folder; give a file name for the model")
+    refuse_library(model_path, option="--model", banks=[bank_dir])
     if not resume and not overwrite and (model_path.exists() or ckpt_path.exists()):
         hint = " or --resume to continue its training" if ckpt_path.exists() else ""
         raise OutputError(f"{model_path}: already exists; pass --overwrite to replace it{hint}")

@@ -160,6 +160,56 @@ def _all_files(root: Path) -> list[Path]:
     return [Path(d, f) for d, _, files in os.walk(root) for f in files]
 
 
+@pytest.fixture(scope="module")
+def library_model(world, tmp_path_factory):
+    """A bank of the world's library and a model file that records that bank."""
+    from modelfiles import model_dict
+
+    from pipeline.modelfile import save_atomic
+
+    root, src, preset = world
+    work = tmp_path_factory.mktemp("lib")
+    _ok(["ingest", src, "--bank", work / "bank", "--preset", preset, "--jobs", "1"])
+    d = model_dict(load_settings(preset))
+    d["bank"]["path"] = str((work / "bank").resolve())
+    save_atomic(d, work / "m.pt")
+    return work / "bank", work / "m.pt"
+
+
+@pytest.mark.parametrize("via", ["path", "symlink"])
+@pytest.mark.parametrize("command", ["generate", "vary", "interpolate", "train", "inspect"])
+def test_no_output_goes_inside_the_library(world, library_model, tmp_path, command, via):
+    """The model records its bank and the bank its source: outputs inside that library would
+    be taken for library sounds by the next ingest, so each command refuses them."""
+    root, src, preset = world
+    bank, model = library_model
+    inside = src / "renders"
+    if via == "symlink":  # the same folder under another name
+        (tmp_path / "lib").symlink_to(src, target_is_directory=True)
+        inside = tmp_path / "lib" / "renders"
+    target = inside / "m.pt" if command == "train" else inside
+    args = {
+        "generate": ["generate", model, "--out", target, "-n", "1", *QUICK],
+        "vary": ["vary", model, "kick_00", "--out", target, "-n", "1", *QUICK],
+        "interpolate": ["interpolate", model, "kick_00", "hat_01", "--out", target, *QUICK],
+        "train": ["train", bank, "--model", target, "--preset", preset, "--epochs", "1"],
+        "inspect": ["inspect", model, "--out", target, "--bank", bank],
+    }[command]
+    if command == "train":
+        inside.mkdir(exist_ok=True)  # a model file needs an existing folder
+    before = tree_digest(src)
+    result = runner.invoke(app, [str(a) for a in args])
+    assert result.exit_code == 1, result.output
+    option = "--model" if command == "train" else "--out"
+    assert result.stderr.strip() == (
+        f"error: {target}: {option} must not be inside the library {src.resolve()} (the source "
+        f"of bank {bank.resolve()}): the next ingest would take what is written there for "
+        "library sounds")
+    if command == "train":
+        inside.rmdir()
+    assert tree_digest(src) == before and not inside.exists()
+
+
 def test_long_interpolation_names_keep_their_steps_and_never_collide(tmp_path):
     """Two morphs whose clip names share a long beginning: each file keeps its step number
     (so the files sort in path order) and the two requests get different names."""
