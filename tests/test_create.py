@@ -15,6 +15,7 @@ from typer.testing import CliRunner
 from pipeline.cli import app
 from pipeline.config import load_settings
 from pipeline.errors import ParameterError, ShotsmithError
+from pipeline.manifest import load_manifest
 
 SR = 16000
 
@@ -152,7 +153,7 @@ def test_vary_writes_manifest_with_nearest(model, tmp_path):
     from pipeline.create import vary_sound
 
     vary_sound(model, "hat_02", tmp_path / "v", n=3, amount=0.0, seed=5)
-    manifest = json.loads((tmp_path / "v" / "manifest.json").read_text())
+    manifest = load_manifest(tmp_path / "v")
     assert manifest["model"]["sha256"]
     items = manifest["items"]
     assert [it["file"] for it in items] == [f.name for f in _files(tmp_path / "v")]

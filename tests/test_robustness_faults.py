@@ -496,6 +496,26 @@ def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, 
     assert not [p.name for p in (tmp_path / "bank").iterdir() if p.name.startswith(".")]
 
 
+def test_what_killed_ingests_left_in_the_bank_is_removed(tmp_path):
+    from pipeline.ingest import ingest_folder
+
+    src, bank = tmp_path / "src", tmp_path / "bank"
+    src.mkdir()
+    for i in range(2):
+        (src / f"s{i}.wav").write_bytes(wav_bytes(hit(16000, seed=i), 16000))
+    ingest_folder(src, bank, load_settings("tiny"), jobs=1)
+    dead = int(Path("/proc/sys/kernel/pid_max").read_text()) + 1  # no such process
+    left = [bank / f".ingest-staging.npy.tmp-{dead}-a1b2c3", bank / f".spectra.npy.tmp-{dead}",
+            bank / f".index.json.tmp-{dead}-00ff00"]
+    live = bank / f".ingest-staging.npy.tmp-{os.getpid()}-a1b2c3"  # an ingest running now
+    mine = bank / f".notes.txt.tmp-{dead}"  # not a bank file: not ours to remove
+    for p in (*left, live, mine):
+        p.write_bytes(b"\0" * 4096)
+    ingest_folder(src, bank, load_settings("tiny"), jobs=1)
+    assert sorted(p.name for p in bank.iterdir() if p.name.startswith(".")) == sorted(
+        [live.name, mine.name])
+
+
 def test_full_disk_while_saving_a_model_keeps_the_last_one(bank, tmp_path, monkeypatch):
     from pipeline import files
     from pipeline.modelfile import load_model_file
