@@ -68,8 +68,10 @@ def _friendly(func):
         except OSError as exc:
             if _state["debug"]:
                 raise
+            from pipeline.files import reason
+
             where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
-            typer.echo(f"error: {where}{exc.strerror or exc}", err=True)
+            typer.echo(f"error: {where}{reason(exc)}", err=True)
             raise typer.Exit(1) from None
 
     return wrapper
