@@ -87,7 +87,7 @@ class ListenServer:
         return [root / PICKS_FILE for root in self.catalog.folders]
 
     def serve_forever(self) -> None:
-        self.httpd.serve_forever(poll_interval=0.2)
+        self.httpd.serve_forever(poll_interval=0.05)
 
     def start(self) -> None:
         """Serve from a background thread (scripts and tests)."""
