@@ -15,9 +15,9 @@ import sys
 from pathlib import Path
 
 import pytest
+from listenkit import make_listen_kit
 from typer.testing import CliRunner
 
-from listenkit import make_listen_kit
 from pipeline.cli import app
 from pipeline.errors import OutputError, ParameterError, ShotsmithError
 from pipeline.kit import export_kit
@@ -47,7 +47,7 @@ def marked(kit, tmp_path):
 
 @pytest.fixture(scope="module", autouse=True)
 def _sfzlint_cache(tmp_path_factory):
-    """sfzlint keeps a parsed copy of its opcode tables in the user's cache folder: a private one."""
+    """sfzlint keeps a parsed copy of its opcode tables in the user's cache: use a private one."""
     _CACHE.append(str(tmp_path_factory.mktemp("sfzlint-cache")))
 
 
@@ -154,7 +154,8 @@ def test_gm_layout_uses_the_gm1_percussion_keys(kit, tmp_path):
     assert min(GM1_PERCUSSION) == 35 and max(GM1_PERCUSSION) == 81 and len(GM1_PERCUSSION) == 47
     assert gm_keys("Kicks")[0] == 36 and gm_keys("snare")[0] == 38 and gm_keys("hi-hat")[0] == 42
     assert gm_keys("open hat") == (46,) and gm_keys("clap") == (39,) and gm_keys("rim") == (37,)
-    assert gm_keys("toms")[0] == 45 and gm_keys("cowbell") == (56,) and gm_keys("ride bell") == (53,)
+    assert gm_keys("toms")[0] == 45 and gm_keys("cowbell") == (56,)
+    assert gm_keys("ride bell") == (53,)
     assert gm_keys("pluck") == () and gm_keys("bell") == () and gm_keys("chat") == ()
     keys = assign_keys(["kick", "kick", "kick", "pluck", None, "snare", "hat"], "gm")
     assert keys[:3] == [36, 35, 82] and keys[5] == 38 and keys[6] == 42

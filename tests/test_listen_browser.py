@@ -108,6 +108,13 @@ def test_page_plays_marks_and_matches_loudness(kit, browser, tmp_path):
         assert browser.execute_script(
             "const i = document.querySelector('#sounds img'); return i.complete && i.naturalWidth")
 
+        # space plays the current (first) card and stops it
+        first_audio = "return document.querySelector('#sounds audio')"
+        _press(browser, " ")
+        _wait(lambda: browser.execute_script(first_audio + ".currentTime > 0.05"), "playback")
+        _press(browser, " ")
+        _wait(lambda: browser.execute_script(first_audio + ".paused"), "space to stop it")
+
         # keyboard: the first card is current; down, k keeps the second; down, x, then u
         _press(browser, Keys.ARROW_DOWN, "k")
         second, third = sounds[1], sounds[2]
@@ -130,6 +137,35 @@ def test_page_plays_marks_and_matches_loudness(kit, browser, tmp_path):
         assert _card_state(browser, loud["id"])["volume"] == 1.0
         browser.find_element("id", "match").click()
         assert _card_state(browser, loud["id"])["volume"] == pytest.approx(on)
+
+        # n: the nearest training sound of the current card loads, as the bank's clip
+        _press(browser, "n")
+        ref = _wait(lambda: browser.execute_script(
+            "const r = document.getElementById('reference');"
+            "return r.src && r.readyState >= 1 ? [r.src, r.duration] : null;"),
+            "the nearest training sound to load")
+        near = third["nearest"]["name"]
+        assert f"/reference/{near}?token=" in ref[0]
+        assert ref[1] == pytest.approx(0.5, abs=0.010)  # the tiny preset's clip length
+
+        # filters and order
+        from selenium.webdriver.support.ui import Select
+
+        Select(browser.find_element("id", "f-kind")).select_by_value("vary")
+        shown = browser.execute_script(
+            "return [...document.querySelectorAll('#sounds > li:not([hidden])')]"
+            ".map(li => li.dataset.id)")
+        assert shown == [s["id"] for s in sounds if s["kind"] == "vary"]
+        Select(browser.find_element("id", "f-kind")).select_by_value("")
+        Select(browser.find_element("id", "f-sort")).select_by_value("near")
+        first = browser.execute_script("return document.querySelector('#sounds > li').dataset.id")
+        assert first == min(sounds, key=lambda s: s["nearest"]["distance_ratio"])["id"]
+        Select(browser.find_element("id", "f-mark")).select_by_value("keep")
+        assert browser.execute_script(
+            "return [...document.querySelectorAll('#sounds > li:not([hidden])')]"
+            ".map(li => li.dataset.id)") == [second["id"]]
+        Select(browser.find_element("id", "f-mark")).select_by_value("")
+        Select(browser.find_element("id", "f-sort")).select_by_value("file")
 
         # the near-copy is flagged in words, and padded loudness is said in words
         page = browser.find_element("tag name", "main").text

@@ -19,8 +19,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 import soundfile as sf
-
 from listenkit import make_listen_kit
+
 from pipeline.listen import load_picks
 from pipeline.listen.server import ListenServer, _byte_range
 
@@ -237,9 +237,9 @@ def test_concurrent_keeps_both_land_in_a_valid_picks_file(server, kit):
     files = [s["file"] for s in server.records()["sounds"] if s["folder"] == 0]
     for a, b in zip(files[0::2], files[1::2]):
         barrier = threading.Barrier(2)
-        codes = []
+        codes: list[int] = []
 
-        def keep(name):
+        def keep(name, barrier=barrier, codes=codes):
             body = json.dumps({"folder": 0, "file": name, "state": "keep"})
             barrier.wait()
             codes.append(request(server, "/api/pick", method="POST", body=body,

@@ -196,8 +196,9 @@ function move(step) {
 function onKey(e) {
   if (e.altKey || e.ctrlKey || e.metaKey) return;
   const t = e.target;
-  if (t.tagName === "SELECT" || t.tagName === "INPUT") return;
-  const onButton = t.tagName === "BUTTON";
+  const checkbox = t.tagName === "INPUT" && t.type === "checkbox";
+  if (t.tagName === "SELECT" || t.tagName === "TEXTAREA" || (t.tagName === "INPUT" && !checkbox)) return;
+  const onButton = t.tagName === "BUTTON" || checkbox; // Space keeps its own meaning there
   const c = state.current && state.cards.get(state.current.dataset.id);
   const key = e.key.length === 1 ? e.key.toLowerCase() : e.key;
   const actions = { k: "keep", x: "reject", u: "clear", n: "nearest", c: "compare" };
