@@ -92,6 +92,10 @@ def _group_key(s: Sound) -> tuple | None:
     return None
 
 
+def _where(s: Sound) -> str:
+    return f"{s.root.name}/{s.file}"
+
+
 def _slots(chosen: list[dict[str, Any]]) -> list[_Slot]:
     """Group the chosen sounds: interpolation steps and variations share a slot."""
     groups: dict[tuple, list[dict[str, Any]]] = {}
@@ -99,7 +103,7 @@ def _slots(chosen: list[dict[str, Any]]) -> list[_Slot]:
     for c in chosen:
         key = _group_key(c["sound"])
         if key is None:
-            slots.append(_Slot(c["category"], "single", [c], c["sound"].file))
+            slots.append(_Slot(c["category"], "single", [c], _where(c["sound"])))
         elif key in groups:
             groups[key].append(c)
         else:
@@ -111,7 +115,7 @@ def _slots(chosen: list[dict[str, Any]]) -> list[_Slot]:
         first = slot.sounds[0]["sound"].item
         srcs = " -> ".join(str(x) for x in first.get("sources") or []) or "?"
         if len(slot.sounds) == 1:
-            slot.mode, slot.label = "single", slot.sounds[0]["sound"].file
+            slot.mode, slot.label = "single", _where(slot.sounds[0]["sound"])
         elif first.get("kind") == "interpolate" and len(slot.sounds) <= 127:
             slot.sounds.sort(key=lambda c: c["sound"].item["step"])
             slot.mode = "velocity"
@@ -254,7 +258,7 @@ def export_kit(
     summary : dict with ``out``, ``sfz``, ``manifest``, ``sounds``, ``keys``, ``layout``.
     """
     if layout not in LAYOUTS:
-        raise ParameterError(f"--layout {layout!r} is not one of {', '.join(LAYOUTS)}")
+        raise ParameterError(f"layout={layout!r} is not one of {', '.join(LAYOUTS)}")
     check_template(name)
     out = Path(out).expanduser()
     chosen = _choose([Path(f) for f in folders], include_all, None if bank is None else Path(bank))

@@ -7,6 +7,7 @@ const $ = (id) => document.getElementById(id);
 
 const state = { data: null, sounds: [], cards: new Map(), current: null, match: true, saving: Promise.resolve() };
 const MARK_WORDS = { keep: "kept", reject: "rejected" };
+const EAGER = 150; // cards whose players load at once; the rest load as they come near the view
 
 function announce(text) {
   const box = $("announce");
@@ -68,7 +69,9 @@ function makeCard(s, index) {
   const nearP = el("p", { class: near.copy ? "copy" : "" }, near.text);
   const loud = el("p", { class: "dim loud" }, loudLine(s));
   const status = el("p", { class: "dim playing", "aria-live": "off" }, "");
-  const audio = el("audio", { controls: "", preload: "metadata", src: withToken(s.audio), "aria-label": "Player for " + s.file });
+  const audio = el("audio", { controls: "", preload: "metadata", "aria-label": "Player for " + s.file });
+  if (index < EAGER) audio.src = withToken(s.audio);
+  else audio.dataset.src = withToken(s.audio);
   audio.volume = volumeFor(s.gain_db);
   audio.addEventListener("play", () => pauseOthers(audio));
   const actions = el("div", { class: "actions", role: "group", "aria-label": "Actions for " + s.file });
@@ -105,7 +108,12 @@ function pauseOthers(playing) {
   if (ref !== playing && !ref.paused) ref.pause();
 }
 
+function ensureLoaded(audio) {
+  if (audio.dataset.src) { audio.src = audio.dataset.src; delete audio.dataset.src; }
+}
+
 function play(audio, label) {
+  ensureLoaded(audio);
   pauseOthers(audio);
   audio.currentTime = 0;
   const p = audio.play();
@@ -284,6 +292,18 @@ async function start() {
   for (const id of ["f-kind", "f-category", "f-mark", "f-sort"]) $(id).addEventListener("change", applyFilters);
   $("match").addEventListener("change", updateMatch);
   document.addEventListener("keydown", onKey);
+  if ("IntersectionObserver" in window) {
+    const seen = new IntersectionObserver((entries) => {
+      for (const e of entries) {
+        if (!e.isIntersecting) continue;
+        ensureLoaded(e.target.querySelector("audio"));
+        seen.unobserve(e.target);
+      }
+    }, { rootMargin: "1500px 0px" });
+    for (const c of state.cards.values()) if (c.audio.dataset.src) seen.observe(c.li);
+  } else {
+    for (const c of state.cards.values()) ensureLoaded(c.audio);
+  }
   updateMatch();
   applyFilters();
   if (visibleCards().length) setCurrent(visibleCards()[0]);
