@@ -27,7 +27,7 @@ from pipeline import __version__
 from pipeline.bank import write_json_atomic
 from pipeline.errors import OutputError, ParameterError, ShotsmithError
 from pipeline.kit_layout import GM1_PERCUSSION, LAYOUTS, assign_keys, velocity_ranges
-from pipeline.listen.catalog import Sound, read_bank, read_folders, sound_category
+from pipeline.listen.catalog import BankRef, Sound, read_bank, read_folders, sound_category
 from pipeline.listen.picks import file_sha256, load_picks
 
 KIT_MANIFEST = "kit.json"
@@ -126,9 +126,8 @@ def _slots(chosen: list[dict[str, Any]]) -> list[_Slot]:
     return slots
 
 
-def _choose(folders: list[Path], include_all: bool, bank: Path | None) -> list[dict[str, Any]]:
+def _choose(folders: list[Path], include_all: bool, ref: BankRef | None) -> list[dict[str, Any]]:
     catalog = read_folders(folders)
-    ref = read_bank(bank) if bank is not None else None
     chosen = []
     for k, root in enumerate(catalog.folders):
         marks = load_picks(root)
@@ -261,12 +260,15 @@ def export_kit(
         raise ParameterError(f"layout={layout!r} is not one of {', '.join(LAYOUTS)}")
     check_template(name)
     out = Path(out).expanduser()
-    chosen = _choose([Path(f) for f in folders], include_all, None if bank is None else Path(bank))
+    ref = read_bank(bank) if bank is not None else None
+    chosen = _choose([Path(f) for f in folders], include_all, ref)
     real_out = out.resolve()
-    for c in chosen:
-        root = c["sound"].root
+    inside = {c["sound"].root: "a folder being exported" for c in chosen}
+    if ref is not None and ref.source is not None:
+        inside[ref.source] = "the library the bank was made from"
+    for root, what in inside.items():
         if real_out == root or real_out.is_relative_to(root):
-            raise OutputError(f"{out}: --out must not be inside {root} (a folder being exported)")
+            raise OutputError(f"{out}: --out must not be inside {root} ({what})")
     slots = _slots(chosen)
     for slot, key in zip(slots, assign_keys([s.category for s in slots], layout)):
         slot.key = key

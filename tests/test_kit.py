@@ -203,6 +203,9 @@ def test_nothing_kept_and_bad_requests(kit, marked, tmp_path):
         export_kit([kit.long], tmp_path / "k")
     with pytest.raises(OutputError, match="must not be inside"):
         export_kit(list(marked), marked[0] / "kit")
+    with pytest.raises(OutputError, match="the library the bank was made from"):
+        export_kit(list(marked), kit.source / "kick" / "kit", bank=kit.bank)
+    assert not (kit.source / "kick" / "kit").exists()
     with pytest.raises(ParameterError, match=r"unknown field \{nope\}"):
         export_kit(list(marked), tmp_path / "k", name="{nope}_{n}")
     with pytest.raises(ParameterError, match="layout"):
