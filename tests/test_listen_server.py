@@ -339,7 +339,7 @@ def test_cli_serves_until_stopped_and_says_where_the_picks_are(kit, tmp_path, st
     import time
 
     folder = tmp_path / "long"
-    shutil.copytree(kit.long, folder)
+    shutil.copytree(kit.long, folder, ignore=shutil.ignore_patterns("picks.json"))
     proc = subprocess.Popen(
         [sys.executable, "-u", "-m", "pipeline", "listen", str(folder), "--no-browser"],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
@@ -367,3 +367,15 @@ def test_cli_serves_until_stopped_and_says_where_the_picks_are(kit, tmp_path, st
     assert f"1 kept, 0 rejected; marks in {folder.resolve() / 'picks.json'}" in out
     assert "Traceback" not in err
     assert load_picks(folder) == {"generate-0001.wav": "keep"}
+
+
+def test_cli_listen_errors_are_one_line(tmp_path):
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    result = CliRunner().invoke(app, ["listen", str(tmp_path), "--no-browser"])
+    assert result.exit_code == 1
+    assert result.output.strip().splitlines() == [
+        f"error: {tmp_path.resolve()}: no manifest.json here (not a folder shotsmith wrote)"]
+    assert CliRunner().invoke(app, ["listen", "--no-browser"]).exit_code == 2

@@ -32,6 +32,12 @@ def _lock_for(folder: Path) -> threading.Lock:
         return _locks.setdefault(key, threading.Lock())
 
 
+def settle(folder: str | Path) -> None:
+    """Wait until no mark is being written in ``folder`` (before a process exits)."""
+    with _lock_for(Path(folder)):
+        pass
+
+
 def file_sha256(path: Path) -> str:
     h = hashlib.sha256()
     with open(path, "rb") as fh:

@@ -30,7 +30,7 @@ from urllib.parse import parse_qs, unquote, urlsplit
 from pipeline.errors import ShotsmithError
 from pipeline.listen.catalog import contained_file, read_bank, read_folders
 from pipeline.listen.measure import draw_legend_png, thumbnail
-from pipeline.listen.picks import PICKS_FILE, STATES, set_pick
+from pipeline.listen.picks import PICKS_FILE, STATES, set_pick, settle
 from pipeline.listen.sounds import References, build_sounds, current_marks
 
 HOST = "127.0.0.1"  # loopback only: never reachable from another machine
@@ -73,6 +73,7 @@ class ListenServer:
             raise ShotsmithError(f"port {port}: cannot listen on {HOST} "
                                  f"({exc.strerror or exc})") from None
         self.httpd.app = self
+        self.closed = False
         self._thread: threading.Thread | None = None
 
     @property
@@ -95,11 +96,15 @@ class ListenServer:
         self._thread.start()
 
     def stop(self) -> None:
+        """Stop serving; marks already being written are finished first, later ones refused."""
+        self.closed = True
         if self._thread is not None:
             self.httpd.shutdown()
             self._thread.join()
             self._thread = None
         self.httpd.server_close()
+        for root in self.catalog.folders:
+            settle(root)
 
     def records(self) -> dict[str, Any]:
         marks = current_marks(self.catalog)
@@ -259,6 +264,9 @@ class _Handler(BaseHTTPRequestHandler):
             return
         if state is not None and state not in STATES:
             self._error(400, "state must be keep, reject or null")
+            return
+        if self.server.app.closed:
+            self._error(503, "the listening server is stopping; the mark was not saved")
             return
         sound = self.server.app.catalog.find(folder, file)
         if sound is None or contained_file(sound.root, sound.file) is None:
