@@ -14,10 +14,11 @@ as round robins. Every other sound has a key of its own.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
+import secrets
 import string
-import tempfile
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,7 +29,7 @@ from pipeline.bank import write_json_atomic
 from pipeline.errors import OutputError, ParameterError, ShotsmithError
 from pipeline.kit_layout import GM1_PERCUSSION, LAYOUTS, assign_keys, velocity_ranges
 from pipeline.listen.catalog import BankRef, Sound, read_bank, read_folders, sound_category
-from pipeline.listen.picks import file_sha256, load_picks
+from pipeline.listen.picks import load_picks
 
 KIT_MANIFEST = "kit.json"
 SAMPLES_DIR = "samples"
@@ -171,31 +172,35 @@ def _names(slots: list[_Slot], template: str) -> None:
             c["name"] = name
 
 
-def _copy(src: Path, dest: Path, overwrite: bool) -> None:
-    """Copy bytes to a temporary name beside ``dest``, then link or rename it into place."""
-    import shutil
+def _write_bytes(dest: Path, data: bytes, overwrite: bool) -> None:
+    """Write ``data`` to a temporary name beside ``dest``, fsync, then link or rename it there.
 
-    fd, tmp = tempfile.mkstemp(prefix=f".{dest.stem[:40]}.", suffix=".tmp", dir=dest.parent)
-    os.close(fd)
+    Without ``overwrite`` an existing ``dest`` is never replaced (a hard link fails if the
+    name appeared meanwhile). Files get the usual permissions (0666 less the umask).
+    """
+    tmp = dest.with_name(f".{dest.name[:60]}.{secrets.token_hex(4)}.tmp")
+    exists = OutputError(f"{dest}: already exists; pass --overwrite to replace it")
     try:
-        shutil.copyfile(src, tmp)
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
         if overwrite:
             os.replace(tmp, dest)
         else:
-            try:  # a hard link fails if the name appeared meanwhile: never clobber
+            try:
                 os.link(tmp, dest)
             except FileExistsError:
-                raise OutputError(f"{dest}: already exists; pass --overwrite to replace it") \
-                    from None
+                raise exists from None
             except OSError:  # no hard links on this file system
                 if dest.exists():
-                    raise OutputError(f"{dest}: already exists; pass --overwrite to replace it") \
-                        from None
+                    raise exists from None
                 os.replace(tmp, dest)
     except OSError as exc:
         raise OutputError(f"{dest}: cannot write ({exc.strerror or exc})") from None
     finally:
-        Path(tmp).unlink(missing_ok=True)
+        tmp.unlink(missing_ok=True)
 
 
 def _sfz_text(kit_name: str, slots: list[_Slot], layout: str, n_sounds: int) -> str:
@@ -290,10 +295,14 @@ def export_kit(
     for slot in slots:
         for c in slot.sounds:
             s = c["sound"]
-            _copy(s.path, out / SAMPLES_DIR / c["name"], overwrite)
+            try:
+                data = s.path.read_bytes()
+            except OSError as exc:
+                raise ShotsmithError(f"{s.path}: cannot read ({exc.strerror or exc})") from None
+            _write_bytes(out / SAMPLES_DIR / c["name"], data, overwrite)
             layer = {k: c[k] for k in ("lovel", "hivel", "seq_length", "seq_position") if k in c}
             entries.append({
-                "file": f"{SAMPLES_DIR}/{c['name']}", "sha256": file_sha256(s.path),
+                "file": f"{SAMPLES_DIR}/{c['name']}", "sha256": hashlib.sha256(data).hexdigest(),
                 "key": slot.key, **layer, "category": c["category"],
                 "category_from": c["category_from"],
                 "from": {"folder": str(s.root), "file": s.file, "mark": c["mark"]},
@@ -305,19 +314,7 @@ def export_kit(
                 "layout_description": LAYOUTS[layout], "sfz": sfz.name, "template": name,
                 "selection": "all" if include_all else "kept", "sounds": entries}
     write_json_atomic(out / KIT_MANIFEST, manifest)
-    _write_text_atomic(sfz, text)
+    _write_bytes(sfz, text.encode("utf-8"), overwrite=True)  # checked above
     return {"out": str(out), "sfz": str(sfz), "manifest": str(out / KIT_MANIFEST),
             "sounds": len(entries), "keys": len(slots), "layout": layout,
             "selection": manifest["selection"]}
-
-
-def _write_text_atomic(path: Path, text: str) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise OutputError(f"{path}: cannot write ({exc.strerror or exc})") from None
-    finally:
-        Path(tmp).unlink(missing_ok=True)

@@ -123,10 +123,14 @@ def test_kept_sounds_become_a_kit(marked, kit, tmp_path):
     sources = {(Path(e["from"]["folder"]).name, e["from"]["file"]) for e in manifest["sounds"]}
     assert sources == {("long", "vary-kick_01-00.wav"), ("long", "vary-kick_01-02.wav"),
                        ("long", "generate-0001.wav"), ("short", "short-1.wav")}
+    umask = os.umask(0)
+    os.umask(umask)
     for e in manifest["sounds"]:  # byte-identical copies of what was kept
         original = Path(e["from"]["folder"]) / e["from"]["file"]
         assert (out / e["file"]).read_bytes() == original.read_bytes()
         assert e["from"]["mark"] == "keep"
+        assert (out / e["file"]).stat().st_mode & 0o777 == 0o666 & ~umask
+    assert sfz.stat().st_mode & 0o777 == 0o666 & ~umask
     vary = [e for e in manifest["sounds"] if e["kind"] == "vary"]
     assert {e["key"] for e in vary} == {35} and {e["seq_position"] for e in vary} == {1, 2}
     kick = next(e for e in manifest["sounds"] if e["from"]["file"] == "generate-0001.wav")
