@@ -10,6 +10,7 @@ so the nearest training sound of a rendered one can be found and played.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path, PurePosixPath, PureWindowsPath
 from typing import Any
 
@@ -39,12 +40,12 @@ class Catalog:
     notes: list[str] = field(default_factory=list)
 
     def find(self, folder: int, file: str) -> Sound | None:
-        return self._index().get((folder, file))
+        """The sound listed as ``file`` in folder number ``folder``: exact names only."""
+        return self._by_key.get((folder, file))
 
-    def _index(self) -> dict[tuple[int, str], Sound]:
-        if not hasattr(self, "_by_key"):
-            self._by_key = {(s.folder, s.file): s for s in self.sounds}
-        return self._by_key
+    @cached_property
+    def _by_key(self) -> dict[tuple[int, str], Sound]:
+        return {(s.folder, s.file): s for s in self.sounds}
 
 
 def _plain_relative(name: str) -> bool:

@@ -21,6 +21,7 @@ import sys
 import threading
 import webbrowser
 from collections.abc import Callable
+from functools import lru_cache
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from importlib import resources
 from pathlib import Path
@@ -283,13 +284,9 @@ class _Handler(BaseHTTPRequestHandler):
         self.do_GET()
 
 
-_legend_png: list[bytes] = []
-
-
+@lru_cache(maxsize=1)
 def _legend() -> bytes:
-    if not _legend_png:
-        _legend_png.append(draw_legend_png())
-    return _legend_png[0]
+    return draw_legend_png()
 
 
 def _byte_range(header: str, size: int) -> tuple[int, int] | None:
