@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 import soundfile as sf
 
-from pipeline.render import BS1770_BLOCK_S, integrated_loudness
+from pipeline.finish import BS1770_BLOCK_S, integrated_loudness
 
 CACHE_DIR = ".shotsmith-listen"
 LOUDNESS_FILE = "loudness.json"
