@@ -112,7 +112,7 @@ def wav_bytes(y: np.ndarray, sr: int, *, bit_depth: str = "24",
               tags: dict[str, str] | None = None) -> bytes:
     """A whole WAV file in memory (libsndfile via soundfile), with RIFF INFO ``tags``.
 
-    ``y`` must lie on the bit depth's grid (see :func:`pipeline.render.finish_audio`): PCM
+    ``y`` must lie on the bit depth's grid (see :func:`pipeline.finish.finish_audio`): PCM
     samples are written as exact integer codes, so what was measured is what is on disk.
     """
     if bit_depth not in SUBTYPES:

@@ -214,7 +214,6 @@ def test_jobs_file_csv_and_toml(model, tmp_path):
 
 def test_a_second_generate_adds_to_the_folder_and_overwrite_replaces(model, tmp_path):
     from pipeline.create import generate_sounds
-    from pipeline.manifest import load_manifest
 
     out = tmp_path / "g"
     assert generate_sounds(model, out, n=2, seed=0)["files"] == [
@@ -267,7 +266,7 @@ def test_cli_generate_json_and_render_options(model, tmp_path):
         assert sf.info(f).subtype == "PCM_16"
     _check_outputs(tmp_path / "cli", peak_db=-6.0)
     # the manifest names the model's preset (it said "custom"), with the options applied
-    manifest = json.loads((tmp_path / "cli" / "manifest.json").read_text())
+    manifest = load_manifest(tmp_path / "cli")
     stored = load_settings("tiny").render
     assert manifest["settings"]["preset"] == "tiny"
     assert manifest["settings"]["render"] == {**stored.__dict__, "bit_depth": "16",
@@ -281,4 +280,4 @@ def test_render_settings_are_typed(model, tmp_path):
     with pytest.raises(ParameterError, match="render must be a RenderSpec"):
         generate_sounds(model, tmp_path / "g", n=1, render={"iterations": 1})
     s = generate_sounds(model, tmp_path / "g", n=1, seed=0, render=RenderSpec(iterations=2))
-    assert json.loads(Path(s["manifest"]).read_text())["render"]["iterations"] == 2
+    assert load_manifest(Path(s["manifest"]).parent)["render"]["iterations"] == 2
