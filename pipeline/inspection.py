@@ -190,7 +190,8 @@ def _paired_ratio(y_ref: np.ndarray, y_dec: np.ndarray, sr: int) -> float:
     X_ref, X_dec = quality.describe_many(y_ref, sr), quality.describe_many(y_dec, sr)
     scale = quality.fit_scale(X_ref)
     A, B = quality.apply_scale(X_ref, scale), quality.apply_scale(X_dec, scale)
-    return float(np.median(quality.paired_distance_ratio(B, A, A)))
+    spacing = quality.typical_spacing(A)
+    return float(np.median(quality.paired_distance_ratio(B, A, spacing)))
 
 
 def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[int],

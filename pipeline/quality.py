@@ -191,16 +191,25 @@ def copy_ratio(outputs: np.ndarray, train: np.ndarray, heldout: np.ndarray) -> f
     return float(np.median(nearest_distances(outputs, train)[1])) / max(ref, 1e-12)
 
 
-def paired_distance_ratio(a: np.ndarray, b: np.ndarray, reference: np.ndarray) -> np.ndarray:
-    """Distance of each row of ``a`` to its own row of ``b``, over the typical spacing of
-    ``reference`` (the median distance from each reference row to its nearest other row).
-
-    For reconstructions: below 1 a reconstruction is closer to its original than
-    real sounds are to each other.
-    """
-    reference = np.asarray(reference, dtype=np.float64)
+def typical_spacing(reference: np.ndarray, others: np.ndarray | None = None) -> float:
+    """Median distance from each row of ``others`` to its nearest row of ``reference`` or,
+    without ``others``, from each reference row to its nearest other reference row."""
     from scipy.spatial import cKDTree
 
+    reference = np.asarray(reference, dtype=np.float64)
+    if others is not None:
+        return float(np.median(nearest_distances(others, reference)[1]))
+    if len(reference) < 2:
+        return 1.0
     d, _ = cKDTree(reference).query(reference, k=2)
-    spacing = float(np.median(d[:, 1])) if len(reference) > 1 else 1.0
+    return float(np.median(d[:, 1]))
+
+
+def paired_distance_ratio(a: np.ndarray, b: np.ndarray, spacing: float) -> np.ndarray:
+    """Distance of each row of ``a`` to its own row of ``b``, over ``spacing``
+    (:func:`typical_spacing`).
+
+    For reconstructions: below 1 a reconstruction is closer to its original than the
+    typical distance between two real sounds.
+    """
     return np.linalg.norm(np.asarray(a) - np.asarray(b), axis=1) / max(spacing, 1e-12)

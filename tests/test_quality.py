@@ -87,8 +87,11 @@ def test_copy_ratio_is_zero_for_copies_and_near_one_for_new_draws(rng):
 def test_paired_ratio_is_zero_for_identical_pairs(rng):
     ref = rng.standard_normal((50, 4))
     a = rng.standard_normal((10, 4))
-    assert np.all(quality.paired_distance_ratio(a, a, ref) == 0)
-    assert np.all(quality.paired_distance_ratio(a, a + 100.0, ref) > 10)
+    spacing = quality.typical_spacing(ref)
+    assert 0 < spacing < quality.typical_spacing(ref[::10])  # sparser sets lie farther apart
+    assert np.all(quality.paired_distance_ratio(a, a, spacing) == 0)
+    np.testing.assert_allclose(quality.paired_distance_ratio(a, a + [3.0, 4.0, 0, 0], 2.5), 2.0)
+    assert quality.typical_spacing(ref, ref[:5]) == 0.0  # members of the reference itself
 
 
 # ---------------------------------------------------------------- descriptors

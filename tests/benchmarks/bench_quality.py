@@ -189,7 +189,9 @@ def run(args) -> dict:
     mu_held, _ = mf.encode(U_held)
     R = describe(_render_codes(mf, mu_held, work / "recon", render), audio.sample_rate)
     recon_fd = quality.frechet_distance(R, H)
-    recon_pair = float(np.median(quality.paired_distance_ratio(R, H, T)))
+    # in units of how far a new real sound lies from its nearest training sound
+    spacing = quality.typical_spacing(T, H)
+    recon_pair = float(np.median(quality.paired_distance_ratio(R, H, spacing)))
 
     # resynthesis ceiling
     resynth_folder(lib / "heldout", work / "resynth", settings)
