@@ -23,13 +23,16 @@ from typing import Any
 
 import numpy as np
 
+from pipeline import files
 from pipeline.config import AudioSpec, Settings, settings_from_dict, spec_from_dict
-from pipeline.errors import BankError, OutputError, PresetError
+from pipeline.errors import BankError, PresetError
 
 BANK_FORMAT = 2  # 2: spectra analysed after AudioSpec.analysis_pad of silence
 SPECTRA_FILE = "spectra.npy"
 INDEX_FILE = "index.json"
 REPORT_FILE = "ingest-report.json"
+STAGING_FILE = "ingest-staging.npy"  # decoded rows while an ingest runs (a temporary)
+BANK_FILES = (SPECTRA_FILE, INDEX_FILE, REPORT_FILE, STAGING_FILE)
 
 
 @dataclass
@@ -53,44 +56,6 @@ class Bank:
     def categories(self) -> list[str]:
         """Sorted category names; clips directly in SOURCE have category ``None``."""
         return sorted({c["category"] for c in self.clips if c.get("category")})
-
-
-def _json_to_temp(path: Path, data: Any) -> Path:
-    """Write JSON next to ``path`` under a temporary name, fsynced; the caller renames it."""
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
-        # A path that is not UTF-8 (POSIX bytes, held as lone surrogates) is written as a
-        # \udcXX JSON escape, which json.loads turns back into the same path.
-        with open(tmp, "w", encoding="utf-8", errors="backslashreplace") as fh:
-            json.dump(data, fh, indent=2, ensure_ascii=False, allow_nan=False)
-            fh.write("\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-    except BaseException as exc:
-        tmp.unlink(missing_ok=True)
-        if isinstance(exc, OSError):
-            raise _cannot_write(path, exc) from None
-        raise
-    return tmp
-
-
-def _cannot_write(path: Path, exc: OSError) -> OutputError:
-    why = "permission denied" if isinstance(exc, PermissionError) else exc.strerror or str(exc)
-    return OutputError(f"{path}: cannot write ({why})")
-
-
-def write_json_atomic(path: Path, data: Any) -> None:
-    """Write JSON to ``path`` via a temporary file and a rename.
-
-    Raises :class:`OutputError` naming ``path`` when it cannot be written (full disk...).
-    """
-    tmp = _json_to_temp(path, data)
-    try:
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise _cannot_write(path, exc) from None
-    finally:
-        tmp.unlink(missing_ok=True)
 
 
 def read_json(path: Path, what: str) -> Any:
@@ -127,7 +92,7 @@ class RowFile:
                 fh.truncate(self.offset + self.shape[0] * self.row_bytes)
             self._fd = os.open(self.path, os.O_RDWR)
         except OSError as exc:
-            raise _cannot_write(self.path.parent, exc) from None
+            raise files.cannot_write(self.path.parent, exc) from None
 
     def put(self, row: int, unit: np.ndarray) -> None:
         data = np.ascontiguousarray(unit, dtype=self.dtype)
@@ -139,7 +104,7 @@ class RowFile:
                 n = os.pwrite(self._fd, view, at)
                 view, at = view[n:], at + n
         except OSError as exc:
-            raise _cannot_write(self.path.parent, exc) from None
+            raise files.cannot_write(self.path.parent, exc) from None
 
     def get(self, row: int) -> np.ndarray:
         buf = os.pread(self._fd, self.row_bytes, self.offset + row * self.row_bytes)
@@ -151,7 +116,7 @@ class RowFile:
                 if sync:
                     os.fsync(self._fd)
             except OSError as exc:
-                raise _cannot_write(self.path.parent, exc) from None
+                raise files.cannot_write(self.path.parent, exc) from None
             finally:
                 os.close(self._fd)
                 self._fd = None
@@ -169,7 +134,7 @@ class BankWriter:
         self.path = Path(path)
         self.audio = audio
         self.path.mkdir(parents=True, exist_ok=True)
-        self._tmp = self.path / f".{SPECTRA_FILE}.tmp-{os.getpid()}"
+        self._tmp = files.temp_path(self.path / SPECTRA_FILE)
         shape = (n_clips, audio.n_bins, audio.n_frames)
         self._rows = RowFile(self._tmp, audio.spectra_dtype, shape)
 
@@ -185,6 +150,7 @@ class BankWriter:
         index = {
             "format": BANK_FORMAT,
             "tool": "shotsmith",
+            "source": report.get("source"),
             "audio": settings["audio"],
             "settings": settings,
             "shape": [len(clips), self.audio.n_bins, self.audio.n_frames],
@@ -192,13 +158,14 @@ class BankWriter:
         }
         # Everything that can fail for lack of space is written before the first rename, so
         # a full disk leaves the previous spectra and index together.
-        index_tmp = _json_to_temp(self.path / INDEX_FILE, index)
+        index_tmp = files.write_temp(self.path / INDEX_FILE, files.json_bytes(index))
         try:
-            os.replace(self._tmp, self.path / SPECTRA_FILE)
-            os.replace(index_tmp, self.path / INDEX_FILE)
-        finally:
+            files.commit(self._tmp, self.path / SPECTRA_FILE)
+        except BaseException:
             index_tmp.unlink(missing_ok=True)
-        write_json_atomic(self.path / REPORT_FILE, report)
+            raise
+        files.commit(index_tmp, self.path / INDEX_FILE)
+        files.write_json_atomic(self.path / REPORT_FILE, report)
 
     def abort(self) -> None:
         self._rows.close()
@@ -270,3 +237,17 @@ def stored_settings(path: str | Path) -> Settings | None:
     except PresetError as exc:
         raise BankError(f"{path / INDEX_FILE}: bad stored settings ({exc}); "
                         "give a preset instead") from None
+
+
+def source_folder(path: str | Path) -> Path | None:
+    """The library folder a bank was made from (recorded by ingest), or None if unknown."""
+    path = Path(path)
+    for name in (INDEX_FILE, REPORT_FILE):
+        try:
+            data = json.loads((path / name).read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, ValueError):
+            continue
+        source = data.get("source") if isinstance(data, dict) else None
+        if isinstance(source, str) and source:
+            return Path(source)
+    return None

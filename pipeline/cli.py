@@ -68,8 +68,10 @@ def _friendly(func):
         except OSError as exc:
             if _state["debug"]:
                 raise
+            from pipeline.files import reason
+
             where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
-            typer.echo(f"error: {where}{exc.strerror or exc}", err=True)
+            typer.echo(f"error: {where}{reason(exc)}", err=True)
             raise typer.Exit(1) from None
 
     return wrapper
@@ -485,6 +487,71 @@ def demo(
 
     s = run_demo(out, epochs=epochs, overwrite=overwrite, progress=_show_progress(as_json))
     _emit(s, as_json, format_demo_summary(s))
+
+
+@app.command()
+@_friendly
+def listen(
+    folders: Annotated[
+        list[Path], typer.Argument(help="Folders of rendered sounds (each with manifest.json).")
+    ],
+    bank: Annotated[
+        Path | None,
+        typer.Option("--bank", help="The bank the model learned from: categories, and the "
+                     "nearest training sound of each rendered one to play."),
+    ] = None,
+    no_browser: Annotated[
+        bool, typer.Option("--no-browser", help="Print the page's address; open no browser.")
+    ] = False,
+    port: Annotated[
+        int, typer.Option("--port", min=0, max=65535, help="Port on 127.0.0.1 (0: any free one).")
+    ] = 0,
+) -> None:
+    """Hear rendered sounds side by side in the browser and keep or reject them (picks.json)."""
+    from pipeline.listen.server import serve
+
+    s = serve(folders, bank=bank, port=port, open_browser=not no_browser, echo=typer.echo)
+    saved = ", ".join(s["picks"]) if s["picks"] else "no marks were made"
+    typer.echo(f"stopped: {s['kept']} kept, {s['rejected']} rejected; marks in {saved}")
+
+
+@app.command()
+@_friendly
+def export(
+    folders: Annotated[
+        list[Path],
+        typer.Argument(help="Folders of rendered sounds marked with 'shotsmith listen'."),
+    ],
+    out: Annotated[Path, typer.Option("--out", help="Kit folder: samples/, kit.json, KIT.sfz.")],
+    include_all: Annotated[
+        bool, typer.Option("--all", help="Export every sound, not only the kept ones.")
+    ] = False,
+    name: Annotated[
+        str | None,
+        typer.Option("--name", help="File name template, default {category}_{kind}_{n:02d}; "
+                     "fields: category, kind, n, name, folder, seed, step, key."),
+    ] = None,
+    layout: Annotated[
+        str,
+        typer.Option("--layout", help="Key layout: gm (General MIDI drums), chromatic, octaves."),
+    ] = "gm",
+    bank: Annotated[
+        Path | None, typer.Option("--bank", help="The bank the model learned from (categories).")
+    ] = None,
+    overwrite: OverwriteOpt = False,
+    as_json: JsonOpt = False,
+) -> None:
+    """Copy the kept sounds into a kit folder with an SFZ instrument and a kit manifest."""
+    from pipeline.kit import DEFAULT_TEMPLATE, export_kit
+    from pipeline.kit_layout import LAYOUTS
+
+    if layout not in LAYOUTS:
+        raise typer.BadParameter(f"{layout!r} must be one of {', '.join(LAYOUTS)}",
+                                 param_hint="--layout")
+    s = export_kit(folders, out, include_all=include_all, name=name or DEFAULT_TEMPLATE,
+                   layout=layout, bank=bank, overwrite=overwrite)
+    _emit(s, as_json, f"wrote {s['sounds']} sounds on {s['keys']} keys ({s['layout']} layout): "
+          f"{s['sfz']}, {s['manifest']}")
 
 
 def main() -> None:

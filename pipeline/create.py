@@ -22,6 +22,7 @@ import numpy as np
 from pipeline import latent
 from pipeline.config import RenderSpec
 from pipeline.errors import ParameterError, ShotsmithError
+from pipeline.outputs import next_number, numbered, refuse_library
 from pipeline.sampler import draw_codes
 
 if sys.version_info >= (3, 11):
@@ -111,6 +112,7 @@ def _render(
     if render is not None and not isinstance(render, RenderSpec):
         raise ParameterError("render must be a RenderSpec (e.g. mf.settings.render or "
                              "settings.with_overrides({'render': {...}}).render), or None")
+    refuse_library(out, option="--out", model=mf)
     render_spec = render or mf.settings.render
     settings = mf.settings.replace(render=render_spec)
     for item, z, near in zip(items, Z, _nearest(mf, Z)):
@@ -181,9 +183,11 @@ def generate_sounds(
         Z = latent.sample_prior(n, mf.mu.shape[1], temperature=temperature, rng=rng)
     else:
         Z = draw_codes(*mf.samplers(), n, near=near, temperature=temperature, rng=rng)
+    start = 0 if overwrite else next_number(out, "generate")  # add after what is there
     items = [
-        {"stem": f"generate-{i:04d}", "kind": "generate", "seed": seed + i, "sources": sources}
-        for i in range(n)
+        {"stem": "generate", "suffix": suffix, "kind": "generate", "seed": seed + i,
+         "sources": sources}
+        for i, suffix in enumerate(numbered(start, n, width=4))
     ]
     request = {
         "command": "generate",
@@ -220,14 +224,15 @@ def _path_items(
     sources = [p.source.get("clip") or p.source.get("file") for p in points]
     items = [
         {
-            "stem": f"{stem}-{i:02d}",
+            "stem": stem,
+            "suffix": suffix,  # the step: never cut from a long name, so files sort in order
             "kind": "interpolate",
             "seed": seed + i,
             "sources": sources,
             "path": kind,
             "step": i,
         }
-        for i in range(steps)
+        for i, suffix in enumerate(numbered(0, steps, width=2))
     ]
     return Z, items
 
@@ -335,8 +340,6 @@ def interpolate_jobs(
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """Many interpolations from one jobs file, rendered into one folder with one manifest."""
-    from pipeline.render import safe_name
-
     jobs = read_jobs_file(jobs_file)
     mf = _load(model)
     seed = _seed(seed)
@@ -344,7 +347,7 @@ def interpolate_jobs(
     for job in jobs:
         try:
             points = [resolve_sound(mf, s) for s in job["sounds"]]
-            label = safe_name(job["label"]) if job.get("label") else None
+            label = job.get("label") or None
             Z, its = _path_items(
                 points, job.get("steps", steps), job.get("path", path), seed + len(items), label
             )
@@ -391,15 +394,18 @@ def vary_sound(
     point = resolve_sound(mf, sound)
     Z = latent.variations(point.mu, point.logvar, n, amount=amount, rng=np.random.default_rng(seed))
     src = [point.source.get("clip") or point.source.get("file")]
+    label = f"vary-{point.label}"
+    start = 0 if overwrite else next_number(out, label)  # add after what is there
     items = [
         {
-            "stem": f"vary-{point.label}-{i:02d}",
+            "stem": label,
+            "suffix": suffix,
             "kind": "vary",
             "seed": seed + i,
             "sources": src,
             "amount": amount,
         }
-        for i in range(n)
+        for i, suffix in enumerate(numbered(start, n, width=2))
     ]
     request = {"command": "vary", "sound": sound, "n": n, "amount": amount, "seed": seed}
     return _render(

@@ -23,6 +23,7 @@ import numpy as np
 from scipy import signal
 
 from pipeline.errors import OutputError, ParameterError
+from pipeline.files import write_atomic
 
 KIT_SEED = 20240611
 KIT_SAMPLE_RATE = 22050
@@ -286,9 +287,7 @@ def synthesize_kit(
         todo[path] = data
     for path, data in todo.items():
         path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
-        tmp.write_bytes(data)
-        os.replace(tmp, path)
+        write_atomic(path, data)
     return KitSummary(str(out), len(files), len(todo), len(files) - len(todo),
                       sum(len(d) for d in files.values()))
 

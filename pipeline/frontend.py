@@ -19,6 +19,7 @@ import numpy as np
 import soundfile as sf
 import soxr
 
+from pipeline import files
 from pipeline.config import AudioSpec
 from pipeline.dsp import raised_cosine
 from pipeline.errors import AudioError
@@ -171,10 +172,8 @@ def decode_file(path: str | Path, spec: AudioSpec) -> tuple[np.ndarray, dict[str
         size = st.st_size
         with open(path, "rb"):
             pass
-    except PermissionError:
-        raise AudioError("cannot be read: permission denied") from None
     except OSError as exc:
-        raise AudioError(f"cannot be read: {(exc.strerror or str(exc)).lower()}") from None
+        raise AudioError(f"cannot be read: {files.reason(exc).lower()}") from None
     if size == 0:
         raise AudioError("empty file (0 bytes)")
     try:

@@ -10,23 +10,23 @@ the bank. SOURCE is only ever read.
 
 from __future__ import annotations
 
-import os
 import time
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pipeline import __version__
+from pipeline import __version__, files
 from pipeline.bank import (
+    BANK_FILES,
     INDEX_FILE,
     REPORT_FILE,
+    STAGING_FILE,
     BankWriter,
     RowFile,
     open_bank,
     read_json,
     stored_settings,
-    write_json_atomic,
 )
 from pipeline.config import Settings, choose_settings
 from pipeline.decode import category_of, check_jobs, clip_names, decode_files, plan_decode
@@ -170,7 +170,8 @@ def ingest_folder(
     if progress:
         progress(done, total)
     bank.mkdir(parents=True, exist_ok=True)
-    staging_path = bank / f".ingest-staging-{os.getpid()}.npy"
+    files.remove_stale_temporaries(bank, BANK_FILES)  # what killed ingests left
+    staging_path = files.temp_path(bank / STAGING_FILE)
     staging = None
     decoded: dict[int, dict[str, Any]] = {}
     writer = None
@@ -227,7 +228,7 @@ def ingest_folder(
             "skipped": skipped,
         }
         if not clips:
-            write_json_atomic(bank / REPORT_FILE, report)
+            files.write_json_atomic(bank / REPORT_FILE, report)
             raise ShotsmithError(
                 f"no usable audio files in {source} ({len(skipped)} skipped, "
                 f"{scan.ignored} ignored; see {bank / REPORT_FILE})"
@@ -238,7 +239,7 @@ def ingest_folder(
         writer.commit(clips, settings_dict, report)
         writer = None
         seconds = report["seconds"] = round(time.perf_counter() - t0, 3)  # now with the write
-        write_json_atomic(bank / REPORT_FILE, report)
+        files.write_json_atomic(bank / REPORT_FILE, report)
     finally:
         if writer is not None:
             writer.abort()

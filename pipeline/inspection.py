@@ -289,20 +289,22 @@ def inspect_model(
     -------
     health : dict, JSON-able; the content of ``health.json``
     """
-    from pipeline import report
-    from pipeline.bank import write_json_atomic
+    from pipeline import files, report
     from pipeline.latent_health import health_report
     from pipeline.modelfile import load_model_file
+    from pipeline.outputs import refuse_library
     from pipeline.sampler import sample_mixture
 
     out_dir, seed = Path(out_dir), 0 if seed is None else int(seed)
     _check_outputs(out_dir, overwrite)
     mf = load_model_file(Path(model_path))
+    refuse_library(out_dir, option="--out", model=mf, banks=[] if bank is None else [bank])
     bank_obj = None if bank is None else _open_matching_bank(Path(bank), mf)
     try:  # only once the inputs are known to be good
         out_dir.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise OutputError(f"{out_dir}: cannot create the folder ({exc.strerror or exc})") from None
+        raise OutputError(f"{out_dir}: cannot create the folder ({files.reason(exc)})") from None
+    files.remove_stale_temporaries(out_dir, OUTPUT_FILES)  # of a killed inspect
 
     mu = np.asarray(mf.mu, np.float64)
     logvar = None if mf.logvar is None else np.asarray(mf.logvar, np.float64)
@@ -351,7 +353,7 @@ def inspect_model(
                     "training": TRAINING_FILE},
         "figure_clips": [names[i] for i in rows],
     }
-    write_json_atomic(out_dir / HEALTH_FILE, health)
+    files.write_json_atomic(out_dir / HEALTH_FILE, health)
     return health
 
 

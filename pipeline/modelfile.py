@@ -35,10 +35,8 @@ The training checkpoint ``MODEL.ckpt`` uses the same archive format
 
 from __future__ import annotations
 
-import glob
 import hashlib
 import io
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -46,9 +44,9 @@ from typing import Any
 import numpy as np
 import torch
 
-from pipeline import __version__
+from pipeline import __version__, files
 from pipeline.config import AudioSpec, Settings, settings_from_dict
-from pipeline.errors import ModelFileError, OutputError, ParameterError, ShotsmithError
+from pipeline.errors import ModelFileError, ParameterError, ShotsmithError
 from pipeline.model import ShotVAE, build_model
 from pipeline.sampler import Mixture, check_mixture, fit_samplers
 
@@ -78,62 +76,22 @@ def names_digest(names: list[str]) -> str:
 
 
 def save_atomic(obj: Any, path: Path) -> None:
-    """``torch.save`` to a temporary name, fsync, then rename over ``path``.
+    """``torch.save`` to memory, then :func:`pipeline.files.write_atomic` to ``path``.
 
     A process killed at any instant leaves either the previous complete file or
     the new complete file at ``path``, never a partial one.
     """
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     # Serialise first: torch's zip writer reports a failed file write (a full disk) as an
     # opaque RuntimeError; writing the finished bytes ourselves gives a plain OSError.
     buf = io.BytesIO()
     torch.save(obj, buf)
-    try:
-        try:
-            with open(tmp, "wb") as fh:
-                fh.write(buf.getbuffer())
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, path)
-        except OSError as exc:
-            why = "permission denied" if isinstance(exc, PermissionError) else exc.strerror or exc
-            raise OutputError(f"{path}: cannot write ({why})") from None
-        try:  # make the rename itself durable
-            dir_fd = os.open(path.parent, os.O_RDONLY)
-        except OSError:
-            return
-        try:
-            os.fsync(dir_fd)
-        except OSError:
-            pass
-        finally:
-            os.close(dir_fd)
-    finally:
-        tmp.unlink(missing_ok=True)
+    files.write_atomic(Path(path), buf.getbuffer())
 
 
 def remove_stale_temporaries(path: str | Path) -> list[Path]:
-    """Delete the temporary files :func:`save_atomic` left for ``path`` in killed processes.
-
-    Only files named ``.NAME.tmp-PID`` whose process no longer exists are removed.
-    """
+    """Delete the temporaries that killed processes left while saving ``path``."""
     path = Path(path)
-    removed = []
-    for tmp in path.parent.glob(f".{glob.escape(path.name)}.tmp-*"):
-        pid = tmp.name.rsplit("-", 1)[-1]
-        if not pid.isdigit():
-            continue
-        try:
-            os.kill(int(pid), 0)
-            continue  # still running
-        except ProcessLookupError:
-            pass
-        except (PermissionError, OverflowError, OSError):
-            continue
-        tmp.unlink(missing_ok=True)
-        removed.append(tmp)
-    return removed
+    return files.remove_stale_temporaries(path.parent, [path.name])
 
 
 def read_archive(path: Path, *, kind: str) -> tuple[dict[str, Any], str]:
@@ -151,7 +109,7 @@ def read_archive(path: Path, *, kind: str) -> tuple[dict[str, Any], str]:
     except FileNotFoundError:
         raise ModelFileError(f"{path}: {what} not found") from None
     except OSError as exc:
-        raise ModelFileError(f"{path}: cannot read {what} ({exc.strerror or exc})") from None
+        raise ModelFileError(f"{path}: cannot read {what} ({files.reason(exc)})") from None
     if not data.startswith(_ZIP_MAGIC):
         raise ModelFileError(f"{path}: not a shotsmith {what}")
     try:

@@ -9,12 +9,13 @@ costs nothing and works without a display.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+
+from pipeline import files
 
 if TYPE_CHECKING:
     from pipeline.config import AudioSpec
@@ -43,16 +44,12 @@ def _figure(size: tuple[int, int]):
 
 
 def _save(fig, path: Path) -> Path:
-    """Write the PNG under a temporary name, then rename it into place."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
-        with open(tmp, "wb") as fh:
-            fig.savefig(fh, format="png", dpi=DPI)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
-    return path
+    """Render the PNG in memory, then write it whole (:func:`pipeline.files.write_atomic`)."""
+    import io
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=DPI)
+    return files.write_atomic(Path(path), buf.getbuffer())
 
 
 def pca_axes(X: np.ndarray, n_components: int = 2) -> tuple[np.ndarray, np.ndarray]:

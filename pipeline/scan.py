@@ -17,6 +17,7 @@ from pathlib import Path
 
 import soundfile as sf
 
+from pipeline import files
 from pipeline.errors import ParameterError
 
 # Extensions of container formats libsndfile reads. MP3 only where the linked
@@ -105,7 +106,7 @@ def scan_folder(source: str | Path) -> ScanResult:
             with os.scandir(folder) as it:
                 entries = sorted(it, key=lambda e: e.name)
         except OSError as exc:
-            reason = f"folder not readable: {_why(exc)}"
+            reason = f"folder not readable: {files.reason(exc).lower()}"
             out.skipped.append({"path": display_path(rel_folder + "/"), "reason": reason})
             continue
         subdirs = []
@@ -124,7 +125,7 @@ def scan_folder(source: str | Path) -> ScanResult:
                         if exc.errno == errno.ELOOP
                         else "broken symbolic link (its target is missing)"
                         if exc.errno == errno.ENOENT and entry.is_symlink()
-                        else f"cannot be read: {_why(exc)}"
+                        else f"cannot be read: {files.reason(exc).lower()}"
                     )
                     out.skipped.append({"path": shown, "reason": reason})
                 else:
@@ -165,12 +166,6 @@ def scan_folder(source: str | Path) -> ScanResult:
         stack.extend(reversed(subdirs))
     out.files.sort(key=lambda f: f.rel)
     return out
-
-
-def _why(exc: OSError) -> str:
-    if isinstance(exc, PermissionError):
-        return "permission denied"
-    return (exc.strerror or str(exc)).lower()
 
 
 def sound_path(path: str | Path) -> str | bytes:

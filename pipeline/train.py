@@ -53,6 +53,7 @@ from pipeline.dataset import (
 from pipeline.errors import OutputError, ParameterError, TrainingError
 from pipeline.model import build_model, count_parameters, encode_all, init_template, vae_loss
 from pipeline.modelfile import model_payload, names_digest, remove_stale_temporaries, save_atomic
+from pipeline.outputs import refuse_library
 from pipeline.sampler import fit_samplers
 
 __all__ = ["TrainSummary", "checkpoint_path", "kl_weight_at", "lr_at", "schedule", "train_model"]
@@ -512,6 +513,7 @@ def _check_outputs(files: RunFiles, *, resume: bool, overwrite: bool) -> None:
         raise OutputError(f"{model_path}: folder {model_path.parent} does not exist")
     if model_path.is_dir():
         raise OutputError(f"{model_path}: is a folder; give a file name for the model")
+    refuse_library(model_path, option="--model", banks=[files.bank.path])
     if not resume and not overwrite and (model_path.exists() or ckpt_path.exists()):
         hint = " or --resume to continue its training" if ckpt_path.exists() else ""
         raise OutputError(f"{model_path}: already exists; pass --overwrite to replace it{hint}")

@@ -48,6 +48,8 @@ def test_python_dash_m_runs_the_same_app():
         "vary",
         "inspect",
         "demo",
+        "listen",
+        "export",
     ):
         assert command in out.stdout
 

@@ -15,6 +15,7 @@ from typer.testing import CliRunner
 from pipeline.cli import app
 from pipeline.config import load_settings
 from pipeline.errors import ParameterError, ShotsmithError
+from pipeline.manifest import load_manifest
 
 SR = 16000
 
@@ -152,7 +153,7 @@ def test_vary_writes_manifest_with_nearest(model, tmp_path):
     from pipeline.create import vary_sound
 
     vary_sound(model, "hat_02", tmp_path / "v", n=3, amount=0.0, seed=5)
-    manifest = json.loads((tmp_path / "v" / "manifest.json").read_text())
+    manifest = load_manifest(tmp_path / "v")
     assert manifest["model"]["sha256"]
     items = manifest["items"]
     assert [it["file"] for it in items] == [f.name for f in _files(tmp_path / "v")]
@@ -211,16 +212,30 @@ def test_jobs_file_csv_and_toml(model, tmp_path):
         interpolate_jobs(model, bad, tmp_path / "bad", seed=0)
 
 
-def test_existing_outputs_are_not_overwritten(model, tmp_path):
+def test_a_second_generate_adds_to_the_folder_and_overwrite_replaces(model, tmp_path):
     from pipeline.create import generate_sounds
 
-    generate_sounds(model, tmp_path / "g", n=2, seed=0)
-    before = (tmp_path / "g" / "generate-0000.wav").read_bytes()
-    with pytest.raises(ShotsmithError, match="generate-0000.wav"):
-        generate_sounds(model, tmp_path / "g", n=2, seed=9)
-    assert (tmp_path / "g" / "generate-0000.wav").read_bytes() == before
-    generate_sounds(model, tmp_path / "g", n=2, seed=9, overwrite=True)
-    assert (tmp_path / "g" / "generate-0000.wav").read_bytes() != before
+    out = tmp_path / "g"
+    assert generate_sounds(model, out, n=2, seed=0)["files"] == [
+        "generate-0000.wav", "generate-0001.wav"]
+    before = (out / "generate-0000.wav").read_bytes()
+    # a second batch goes after the first, without --overwrite, as a second run
+    assert generate_sounds(model, out, n=3, seed=9)["files"] == [
+        f"generate-{i:04d}.wav" for i in (2, 3, 4)]
+    assert (out / "generate-0000.wav").read_bytes() == before
+    m = load_manifest(out)
+    assert [(it["file"], it["run"]) for it in m["items"]] == [
+        (f"generate-{i:04d}.wav", 1 if i < 2 else 2) for i in range(5)]
+    assert [r["request"]["seed"] for r in m["runs"]] == [0, 9] and m["complete"] is True
+    assert m["request"]["seed"] == 9  # the top level is the latest run's
+    # --overwrite keeps its meaning: the same names again, replaced
+    generate_sounds(model, out, n=2, seed=9, overwrite=True)
+    assert (out / "generate-0000.wav").read_bytes() != before
+    m = load_manifest(out)
+    assert {it["file"]: it["run"] for it in m["items"]} == {
+        "generate-0000.wav": 3, "generate-0001.wav": 3, "generate-0002.wav": 2,
+        "generate-0003.wav": 2, "generate-0004.wav": 2}
+    assert sorted(it["file"] for it in m["items"]) == sorted(p.name for p in _files(out))
 
 
 def test_cli_generate_json_and_render_options(model, tmp_path):
@@ -251,7 +266,7 @@ def test_cli_generate_json_and_render_options(model, tmp_path):
         assert sf.info(f).subtype == "PCM_16"
     _check_outputs(tmp_path / "cli", peak_db=-6.0)
     # the manifest names the model's preset (it said "custom"), with the options applied
-    manifest = json.loads((tmp_path / "cli" / "manifest.json").read_text())
+    manifest = load_manifest(tmp_path / "cli")
     stored = load_settings("tiny").render
     assert manifest["settings"]["preset"] == "tiny"
     assert manifest["settings"]["render"] == {**stored.__dict__, "bit_depth": "16",
@@ -265,4 +280,4 @@ def test_render_settings_are_typed(model, tmp_path):
     with pytest.raises(ParameterError, match="render must be a RenderSpec"):
         generate_sounds(model, tmp_path / "g", n=1, render={"iterations": 1})
     s = generate_sounds(model, tmp_path / "g", n=1, seed=0, render=RenderSpec(iterations=2))
-    assert json.loads(Path(s["manifest"]).read_text())["render"]["iterations"] == 2
+    assert load_manifest(Path(s["manifest"]).parent)["render"]["iterations"] == 2

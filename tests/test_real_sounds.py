@@ -16,6 +16,7 @@ import pytest
 
 from pipeline.bank import REPORT_FILE, open_bank
 from pipeline.config import load_settings
+from pipeline.manifest import load_manifest
 from pipeline.scan import is_audio_name, is_hidden
 
 COLLECTIONS = {
@@ -94,7 +95,7 @@ def test_real_sounds_resynthesize_to_a_stated_spectral_convergence(name, tmp_pat
     source = _collection(name)
     out = tmp_path / "out"
     summary = resynth_folder(source, out, SETTINGS, jobs=2)
-    manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+    manifest = load_manifest(out)
     items = manifest["items"]
     assert summary["written"] == len(items) >= 20 and manifest["complete"]
     assert sorted(it["file"] for it in items) == sorted(p.name for p in out.glob("*.wav"))

@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import errno
 import json
-import os
 from pathlib import Path
 
 import numpy as np
@@ -12,9 +10,10 @@ import pyloudnorm
 import pytest
 import soundfile as sf
 
-from pipeline import render, spectra
+from pipeline import outputs, render, spectra
 from pipeline.config import RenderSpec, load_settings
 from pipeline.errors import AudioError, OutputError, ParameterError
+from pipeline.manifest import load_manifest
 
 SR = 48000
 TINY = load_settings("tiny")
@@ -120,78 +119,14 @@ def test_16_bit_tpdf_dither_is_seeded_and_triangular():
     assert abs(np.corrcoef(err, clean)[0, 1]) < 0.02
 
 
-def test_pcm_24_round_trip_within_one_lsb(tmp_path, rng):
-    y = 0.5 * np.sin(2 * np.pi * 1000 * np.arange(SR) / SR) + 0.01 * rng.standard_normal(SR)
-    path = render.write_wav(tmp_path / "x.wav", y, SR, bit_depth="24")
-    back, sr = sf.read(path, dtype="float64")
-    # soundfile / libsndfile SF_FORMAT_PCM_24 (references.md section 10): error <= 2^-23
-    assert sr == SR and sf.info(path).subtype == "PCM_24"
-    assert np.max(np.abs(back - y)) <= 2**-23
-    out, _ = render.finish_audio(y, SR, RenderSpec(bit_depth="24"))
-    path = render.write_wav(tmp_path / "f.wav", out, SR, bit_depth="24")
-    np.testing.assert_array_equal(sf.read(path, dtype="float32")[0], out)  # bit exact
-
-
-@pytest.mark.parametrize(("bit_depth", "subtype"), [("16", "PCM_16"), ("32f", "FLOAT")])
-def test_other_bit_depths_write_exactly_what_was_finished(tmp_path, rng, bit_depth, subtype):
-    out, _ = render.finish_audio(rng.standard_normal(SR // 2), SR, RenderSpec(bit_depth=bit_depth),
-                                 rng=rng)
-    path = render.write_wav(tmp_path / "x.wav", out, SR, bit_depth=bit_depth)
-    assert sf.info(path).subtype == subtype
-    np.testing.assert_array_equal(sf.read(path, dtype="float32")[0], out)
-
-
 def test_non_finite_audio_is_never_written(tmp_path):
     y = np.zeros(1000)
     y[10] = np.nan
     with pytest.raises(AudioError, match="non-finite"):
         render.finish_audio(y, SR, RenderSpec())
     with pytest.raises(AudioError, match="non-finite"):
-        render.write_wav(tmp_path / "bad.wav", y, SR)
+        outputs.write_wav(tmp_path / "bad.wav", y, SR)
     assert list(tmp_path.iterdir()) == []
-
-
-def test_existing_file_is_kept_without_overwrite(tmp_path):
-    path = render.write_wav(tmp_path / "a.wav", np.full(100, 0.25), SR)
-    before = path.read_bytes()
-    with pytest.raises(OutputError, match=r"a\.wav: already exists"):
-        render.write_wav(path, np.full(100, -0.5), SR)
-    assert path.read_bytes() == before
-    render.write_wav(path, np.full(100, -0.5), SR, overwrite=True)
-    assert path.read_bytes() != before
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.wav"]  # no temporary left
-
-
-def test_full_disk_is_an_output_error_and_leaves_nothing(tmp_path, monkeypatch):
-    def full(*a, **k):
-        raise OSError(errno.ENOSPC, "No space left on device")
-
-    monkeypatch.setattr(render.sf, "write", full)
-    with pytest.raises(OutputError, match="x.wav: cannot write .No space left"):
-        render.write_wav(tmp_path / "x.wav", np.zeros(10), SR)
-    assert list(tmp_path.iterdir()) == []
-
-
-@pytest.mark.parametrize(
-    "text",
-    ["../../etc/passwd", "/abs/path/kick", "C:\\Windows\\system32", "..", ".", "", "CON", "nul.txt",
-     "com1", "a\x00b\x1fc\x7f", "  .hidden  ", "trailing dots...", "x" * 400, "東京の雨 " * 40,
-     "a/../b", "\u202egnp.exe"],
-)
-def test_safe_names_cannot_escape_the_folder(tmp_path, text):
-    name = render.safe_name(text)
-    assert name and "/" not in name and "\\" not in name and ".." not in name
-    assert not name.startswith(".") and not name.endswith((".", " "))
-    assert len(name.encode("utf-8")) <= render.NAME_MAX_BYTES
-    assert not any(ord(c) < 32 or c == "\x7f" for c in name)
-    assert name.split(".")[0].lower() not in {"con", "nul", "com1"}
-    target = (tmp_path / f"{name}.wav").resolve()
-    assert target.parent == tmp_path.resolve()
-
-
-def test_safe_names_keep_unicode_and_ordinary_text():
-    assert render.safe_name("Schlagzeug über 東京") == "Schlagzeug über 東京"
-    assert render.safe_name("kick_01-hard") == "kick_01-hard"
 
 
 def _U(rng, b, audio=TINY.audio):
@@ -215,13 +150,17 @@ def test_render_spectra_writes_named_files_and_a_manifest(tmp_path, rng):
                                   seed=1, manifest_extra=extra)
     files = sorted(p.name for p in (tmp_path / "out").glob("*.wav"))
     assert files == sorted(f"hit {k}.wav" for k in range(6))
-    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text(encoding="utf-8"))
+    manifest = load_manifest(tmp_path / "out")
     assert manifest["tool"] == "shotsmith" and manifest["complete"] is True
     assert manifest["model"] == {"path": "m.pt", "sha256": "ab"}
     assert manifest["render"]["iterations"] == 8 and manifest["settings"]["preset"] == "tiny"
     assert [it["file"] for it in manifest["items"]] == [it["file"] for it in items]
     first = manifest["items"][0]
-    assert list(first)[:6] == ["file", "kind", "z", "seed", "sources", "nearest"]
+    assert list(first)[:8] == ["file", "run", "model", "kind", "z", "seed", "sources", "nearest"]
+    assert first["model"] == {"path": "m.pt", "sha256": "ab"} and first["run"] == 1
+    on_disk = json.loads((tmp_path / "out" / "manifest.json").read_text(encoding="utf-8"))
+    assert on_disk["items"] == [{k: v for k, v in it.items() if k != "model"}
+                                for it in manifest["items"]]
     assert first["seed"] == 1 and first["z"] == [0.5, 0]
     for it in manifest["items"]:
         assert it["sc_db"] < -10 and it["peak_dbfs"] <= -1.0 and it["normalisation"] == "peak"
@@ -248,12 +187,13 @@ def test_render_refuses_existing_files_and_keeps_the_manifest_true(tmp_path, rng
     with pytest.raises(OutputError, match=r"hit 0\.wav"):
         render.render_spectra(_batches(rng, [2]), tmp_path, TINY.audio, spec)
     assert (tmp_path / "hit 0.wav").read_bytes() == before
-    manifest = json.loads((tmp_path / "manifest.json").read_text(encoding="utf-8"))
+    manifest = load_manifest(tmp_path)
     assert sorted(it["file"] for it in manifest["items"]) == ["hit 0.wav", "hit 1.wav"]
+    assert len(manifest["runs"]) == 1  # the refused run wrote nothing, so left no trace
     render.render_spectra(_batches(rng, [1]), tmp_path, TINY.audio, spec, overwrite=True)
-    manifest = json.loads((tmp_path / "manifest.json").read_text(encoding="utf-8"))
-    by_file = {it["file"]: it for it in manifest["items"]}
-    assert "earlier_run" not in by_file["hit 0.wav"] and by_file["hit 1.wav"]["earlier_run"]
+    manifest = load_manifest(tmp_path)
+    by_file = {it["file"]: it["run"] for it in manifest["items"]}
+    assert by_file == {"hit 0.wav": 2, "hit 1.wav": 1}  # the replaced file: the new run's
 
 
 def test_interrupted_render_leaves_a_manifest_of_exactly_the_files_present(tmp_path, rng):
@@ -265,6 +205,7 @@ def test_interrupted_render_leaves_a_manifest_of_exactly_the_files_present(tmp_p
         render.render_spectra(interrupted(), tmp_path, TINY.audio, RenderSpec(iterations=2))
     manifest = json.loads((tmp_path / "manifest.json").read_text(encoding="utf-8"))
     present = sorted(p.name for p in tmp_path.iterdir() if p.name != "manifest.json")
+    assert load_manifest(tmp_path)["items"] == [dict(it, model=None) for it in manifest["items"]]
     assert sorted(it["file"] for it in manifest["items"]) == present
     assert len(present) == 4 and manifest["complete"] is False
 
@@ -285,21 +226,6 @@ def test_interrupted_render_leaves_a_manifest_of_exactly_the_files_present(tmp_p
 def test_shape_mismatch_is_a_parameter_error(tmp_path, rng):
     with pytest.raises(ParameterError, match="do not match"):
         render.render_spectra([(np.zeros((1, 10, 10)), [{}])], tmp_path, TINY.audio, RenderSpec())
-
-
-def test_unwritable_output_folder_is_one_clear_error(tmp_path):
-    blocker = tmp_path / "file"
-    blocker.write_text("x")
-    with pytest.raises(OutputError, match="exists and is not a folder"):
-        render.OutputFolder(blocker)
-    with pytest.raises(OutputError, match="sub: cannot create the output folder"):
-        render.OutputFolder(blocker / "sub")  # its parent is a file
-    if os.geteuid() != 0:  # root writes into read-only folders anyway
-        ro = tmp_path / "ro"
-        ro.mkdir()
-        ro.chmod(0o500)
-        with pytest.raises(OutputError, match="not writable"):
-            render.OutputFolder(ro)
 
 
 def test_items_without_a_stem_get_numbered_names(tmp_path, rng):

@@ -15,6 +15,7 @@ from pipeline import spectra
 from pipeline.cli import app
 from pipeline.config import load_settings
 from pipeline.errors import OutputError, ShotsmithError
+from pipeline.manifest import load_manifest
 from pipeline.resynth import resynth_folder
 
 SETTINGS = load_settings("tiny", {"render": {"iterations": 16}})
@@ -52,7 +53,7 @@ def test_resynth_writes_every_usable_file_and_records_sc(source, tmp_path):
     s = resynth_folder(source, out, SETTINGS, jobs=1)
     assert _tree_digest(source) == before  # SOURCE is only read
     assert s["written"] == 4 and s["skipped"] == 2 and s["ignored"] == 1 and s["failed"] == 0
-    manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+    manifest = load_manifest(out)
     files = sorted(p.name for p in out.glob("*.wav"))
     assert files == ["hat_kick.wav", "kick_kick.wav", "open hat é.wav", "tone.wav"]
     assert sorted(it["file"] for it in manifest["items"]) == files
@@ -64,7 +65,7 @@ def test_resynth_writes_every_usable_file_and_records_sc(source, tmp_path):
     reasons = {s["path"]: s["reason"] for s in manifest["skipped"]}
     assert set(reasons) == {"hat/notes.wav", "silent.wav"} and "silent" in reasons["silent.wav"]
     for it in manifest["items"]:
-        assert it["kind"] == "resynth" and it["sources"] == [it["source"]]
+        assert it["kind"] == "resynth" and it["sources"] == [it["source"]] and it["model"] is None
         assert it["sc_db"] < -12 and it["peak_dbfs"] <= -1.0
         y, sr = sf.read(out / it["file"])
         assert sr == SR and len(y) == SETTINGS.audio.n_samples
@@ -83,7 +84,7 @@ def test_recorded_sc_is_that_of_the_reconstruction(source, tmp_path):
     plain = load_settings("tiny", {"render": {"iterations": 16, "fade_in_ms": 0.0,
                                               "fade_out_ms": 0.0, "bit_depth": "32f"}})
     resynth_folder(source, tmp_path / "o", plain, jobs=1)
-    item = next(it for it in json.loads((tmp_path / "o" / "manifest.json").read_text())["items"]
+    item = next(it for it in load_manifest(tmp_path / "o")["items"]
                 if it["file"] == "tone.wav")
     a = plain.audio
     S = spectra.unit_to_magnitude(spectra.clip_to_unit(load_clip(source / "tone.flac", a), a), a)
@@ -123,7 +124,7 @@ def test_no_usable_file_is_one_clear_error(tmp_path):
     (src / "a.wav").write_bytes(b"")
     with pytest.raises(ShotsmithError, match=r"no usable audio files in .*a\.wav: empty file"):
         resynth_folder(src, tmp_path / "out", SETTINGS)
-    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    manifest = load_manifest(tmp_path / "out")
     assert manifest["items"] == [] and manifest["skipped"][0]["path"] == "a.wav"
 
 

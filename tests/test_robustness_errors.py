@@ -60,7 +60,7 @@ def w(tmp_path_factory) -> dict[str, Path]:
     paths["foreign"].mkdir()
     (paths["foreign"] / "index.json").write_text('{"someone": "else"}')
     paths["existing"].mkdir()
-    (paths["existing"] / "generate-0000.wav").write_bytes(b"my own file")
+    (paths["existing"] / "interpolate-kick_00-to-hat_01-00.wav").write_bytes(b"my own file")
     y = hit(16000)
     y[10] = float("nan")
     paths["nan"].write_bytes(wav_bytes(y, 16000, subtype="FLOAT"))
@@ -120,8 +120,8 @@ CASES = [
     (["generate", "{bank}", "--out", "{out}/g"], 1, ["bank", "is a folder"]),
     (["generate", "{model}", "--out", "{file}"], 1, ["a file.txt", "not a folder"]),
     (["generate", "{model}", "--out", "{out}/g", "--near", "snare"], 1, ["snare", "kick"]),
-    (["generate", "{model}", "--out", "{existing}", "-n", "2"], 1,
-     ["generate-0000.wav", "already exists", "--overwrite"]),
+    (["interpolate", "{model}", "kick_00", "hat_01", "--out", "{existing}", "--steps", "2"], 1,
+     ["interpolate-kick_00-to-hat_01-00.wav", "already exists", "--overwrite"]),
     (["generate", "{model}", "--out", "{out}/g", "-n", "0"], 2, []),
     (["generate", "{model}", "--out", "{out}/g", "--temperature", "-1"], 2, []),
     (["generate", "{model}", "--out", "{out}/g", "--bit-depth", "8"], 2, ["--bit-depth"]),
@@ -205,8 +205,9 @@ def test_every_command_is_exercised():
 
 def test_nothing_was_written_by_the_failures(w):
     """The failing commands above wrote nothing next to the good inputs."""
-    assert (w["existing"] / "generate-0000.wav").read_bytes() == b"my own file"
-    assert sorted(p.name for p in w["existing"].iterdir()) == ["generate-0000.wav"]
+    mine = w["existing"] / "interpolate-kick_00-to-hat_01-00.wav"
+    assert mine.read_bytes() == b"my own file"
+    assert sorted(p.name for p in w["existing"].iterdir()) == [mine.name]
     assert sorted(p.name for p in w["foreign"].iterdir()) == ["index.json"]
     assert not (w["src"] / "bank").exists() and not (w["src"] / "r").exists()
 

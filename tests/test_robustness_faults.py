@@ -132,12 +132,20 @@ def model_file(bank):
     return write_model_file(bank[0].parent / "model.pt", settings)
 
 
-def _check_outputs(out: Path, *, complete: bool | None = None) -> list[str]:
-    """Every WAV is whole, nothing temporary is left, the manifest lists exactly the WAVs."""
-    manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+def _check_outputs(out: Path, *, complete: bool | None = None, folded: bool = True) -> list[str]:
+    """Every WAV is whole, nothing temporary is left, the manifest (as the one loader reads
+    it) lists exactly the WAVs; ``folded``: the log is folded into manifest.json."""
+    from pipeline.manifest import LOG_FILE, load_manifest
+
+    manifest = load_manifest(out)
     wavs = sorted(p.name for p in out.glob("*.wav"))
     assert sorted(it["file"] for it in manifest["items"]) == wavs
-    assert not [p.name for p in out.iterdir() if p.name.startswith(".")]
+    assert not manifest["unlisted"]
+    if folded:  # a kill may leave temporaries: the next run removes them
+        assert not [p.name for p in out.iterdir() if p.name.startswith(".")]
+        assert not (out / LOG_FILE).exists()
+        on_disk = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+        assert sorted(it["file"] for it in on_disk["items"]) == wavs
     for name in wavs:
         info = sf.info(out / name)
         assert info.frames == 8000 and info.samplerate == 16000 and info.subtype == "PCM_24"
@@ -155,7 +163,7 @@ def test_ctrl_c_during_generate_leaves_whole_wavs_and_a_true_manifest(model_file
     for trial in range(trials):
         out = own_tmp / f"out{trial}"
         proc = _cli("generate", str(model_file), "--out", str(out), "-n", "2000", "--seed", "3")
-        assert _wait_for(lambda o=out: (o / "manifest.json").exists(), proc)
+        assert _wait_for(lambda o=out: any(o.glob("*.wav")), proc)
         time.sleep(float(rng.uniform(0.0, 1.0)))
         proc.send_signal(signal.SIGINT)
         _, err = proc.communicate(timeout=60)
@@ -165,6 +173,114 @@ def test_ctrl_c_during_generate_leaves_whole_wavs_and_a_true_manifest(model_file
         assert 0 < len(wavs) < 2000
         interrupted += 1
     assert interrupted == trials
+
+
+@pytest.mark.slow
+def test_sigkill_during_generate_leaves_a_manifest_of_exactly_the_wavs(model_file, own_tmp):
+    """Killed at random moments, run after run into one folder: what the manifest loader reads
+    is exactly the WAVs present; the next run removes the temporaries, adds after what is
+    there, and ends with a folded manifest marked complete."""
+    from pipeline.create import generate_sounds
+
+    rng = np.random.default_rng(int(os.environ.get("SHOTSMITH_FAULT_SEED", "7")))
+    out, kills = own_tmp / "out", 0
+    for trial in range(LOOPS):
+        had = len(list(out.glob("*.wav"))) if out.exists() else 0
+        proc = _cli("generate", str(model_file), "--out", str(out), "-n", "2000",
+                    "--seed", str(trial))
+        assert _wait_for(lambda h=had: len(list(out.glob("*.wav"))) > h, proc)
+        time.sleep(float(rng.uniform(0.0, 1.0)))  # a batch of 4 takes about 0.1 s here
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGKILL)
+            kills += 1
+        out_text, err = proc.communicate(timeout=60)
+        why = f"trial {trial}, exit {proc.returncode}: {out_text[-800:]} {err[-1500:]}"
+        wavs = _check_outputs(out, folded=False)
+        assert len(wavs) > had, why
+    assert kills >= 1
+    done = generate_sounds(model_file, out, n=3, seed=99)
+    last = sorted(p.name for p in out.glob("*.wav"))[-3:]
+    assert done["files"] == last  # numbered after everything the killed runs left
+    _check_outputs(out, complete=True)
+
+
+_KILL_SCRIPT = """
+import importlib, os, signal, sys
+import numpy as np
+from pipeline import render, spectra
+from pipeline.config import RenderSpec, load_settings
+
+where, attr, k, when, overwrite, out, prefix, f0 = sys.argv[1:9]
+owner = importlib.import_module(where) if "." not in attr else None
+if owner is None:
+    cls, attr = attr.split(".")
+    owner = getattr(importlib.import_module(where), cls)
+real, calls = getattr(owner, attr), [0]
+
+def hooked(*a, **kw):
+    calls[0] += 1
+    if calls[0] == int(k) and when == "before":
+        os.kill(os.getpid(), signal.SIGKILL)
+    result = real(*a, **kw)
+    if calls[0] == int(k) and when == "after":
+        os.kill(os.getpid(), signal.SIGKILL)
+    return result
+
+setattr(owner, attr, hooked)
+audio = load_settings("tiny").audio
+t = np.arange(audio.n_samples) / audio.sample_rate
+f = [float(f0) + 50 * i for i in range(6)]
+U = spectra.clip_to_unit(np.stack([0.5 * np.sin(2 * np.pi * fi * t) * np.exp(-8 * t) for fi in f]),
+                         audio)
+items = [{"stem": f"{prefix}-{i}", "kind": "test"} for i in range(6)]
+render.render_spectra([(U, items)], out, audio, RenderSpec(iterations=1, batch_size=2),
+                      overwrite=overwrite == "1")
+sys.exit(3)  # the hook never fired
+"""
+
+KILL_POINTS = [  # (module, function, call, before/after, overwrite)
+    ("pipeline.files", "write_temp", 3, "after", False),  # a WAV's temporary, nothing logged
+    ("pipeline.manifest", "ManifestLog.append", 4, "before", False),
+    ("pipeline.manifest", "ManifestLog.append", 4, "after", False),  # logged, not at its name
+    ("os", "link", 2, "before", False),
+    ("os", "link", 2, "after", False),  # at its name, the temporary still there
+    ("pipeline.manifest", "ManifestLog.append", 3, "before", True),  # --overwrite: the old
+    ("os", "replace", 2, "after", True),  # file is gone before the new one is logged
+    ("pipeline.manifest", "fold", 1, "before", False),  # every WAV there, the log not folded
+    ("os", "replace", 1, "after", False),  # manifest.json written, the log not yet removed
+]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(("where", "fn", "k", "when", "overwrite"), KILL_POINTS)
+def test_sigkill_at_each_step_of_writing_a_file(own_tmp, where, fn, k, when, overwrite):
+    from pipeline.manifest import load_manifest
+
+    out = own_tmp / "out"
+    first = subprocess.run([sys.executable, "-c", _KILL_SCRIPT, "os", "getpid", "0", "-", "0",
+                            str(out), "a", "200"], capture_output=True, text=True, timeout=120)
+    assert first.returncode == 3, first.stderr[-1500:]  # a whole first run
+    before = {p.name: p.read_bytes() for p in out.glob("*.wav")}
+    proc = subprocess.run([sys.executable, "-c", _KILL_SCRIPT, where, fn, str(k), when,
+                           str(int(overwrite)), str(out), "a" if overwrite else "b", "230"],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == -signal.SIGKILL, proc.stderr[-1500:]
+    m = load_manifest(out)
+    wavs = sorted(p.name for p in out.glob("*.wav"))
+    assert sorted(it["file"] for it in m["items"]) == wavs and not m["unlisted"]
+    for it in m["items"]:  # each file is described by the run that wrote it
+        same = (out / it["file"]).read_bytes() == before.get(it["file"])
+        assert same == (it["run"] == 1), (it["file"], it["run"])
+    assert len(wavs) >= (4 if overwrite else 6)
+    # the next run: temporaries gone, the log folded, complete, still exactly the files
+    from pipeline import render
+
+    render.render_spectra([], out, load_settings("tiny").audio, render.RenderSpec())
+    m = load_manifest(out)
+    assert m["complete"] is True
+    assert sorted(it["file"] for it in m["items"]) == sorted(p.name for p in out.glob("*.wav"))
+    assert sorted(p.name for p in out.iterdir() if not p.name.endswith(".wav")) == [
+        "manifest.json"]
 
 
 def test_keyboard_interrupt_from_the_progress_callback(model_file, tmp_path):
@@ -202,24 +318,20 @@ def test_missing_parent_and_file_in_the_way_are_one_line_errors(model_file, tmp_
 
 
 def test_read_only_output_folder_is_one_line_error(model_file, tmp_path, monkeypatch):
-    import tempfile
-
-    from pipeline import render
-
     out = tmp_path / "ro"
     out.mkdir()
     (out / "keep.wav").write_bytes(b"mine")
     if os.geteuid() != 0:
         out.chmod(0o555)
     else:  # root writes anywhere: make creating a file in that folder fail as it would
-        real = tempfile.mkstemp
+        real = os.open
 
-        def mkstemp(*a, dir=None, **k):
-            if dir is not None and Path(dir) == out:
-                raise PermissionError(errno.EACCES, "Permission denied", str(dir))
-            return real(*a, dir=dir, **k)
+        def os_open(path, flags, *a, **k):
+            if flags & os.O_CREAT and Path(path).parent == out:
+                raise PermissionError(errno.EACCES, "Permission denied", str(path))
+            return real(path, flags, *a, **k)
 
-        monkeypatch.setattr(render.tempfile, "mkstemp", mkstemp)
+        monkeypatch.setattr(os, "open", os_open)
     try:
         result = runner.invoke(app, ["generate", str(model_file), "--out", str(out), "-n", "2"])
     finally:
@@ -231,9 +343,9 @@ def test_read_only_output_folder_is_one_line_error(model_file, tmp_path, monkeyp
     assert (out / "keep.wav").read_bytes() == b"mine"
 
 
-@pytest.mark.parametrize("where", ["wav", "rename", "manifest"])
+@pytest.mark.parametrize("where", ["wav", "rename", "log", "manifest"])
 def test_full_disk_during_generate_keeps_earlier_files(model_file, tmp_path, monkeypatch, where):
-    from pipeline import bank, render
+    from pipeline import files, manifest
     from pipeline.create import generate_sounds, vary_sound
 
     out = tmp_path / "out"
@@ -245,51 +357,106 @@ def test_full_disk_during_generate_keeps_earlier_files(model_file, tmp_path, mon
     def full(*a, **k):
         raise OSError(errno.ENOSPC, "No space left on device")
 
+    real_write = files._write_all
     if where == "wav":  # the fifth WAV of the second run cannot be written
-        real_write = render.sf.write
 
-        def write(*a, **k):
+        def write_all(fd, data):
+            if bytes(data[:4]) == b"RIFF":
+                count["n"] += 1
+                if count["n"] >= 5:
+                    full()
+            return real_write(fd, data)
+
+        monkeypatch.setattr(files, "_write_all", write_all)
+    elif where == "rename":  # no WAV reaches its name, nor can manifest.json be replaced
+        monkeypatch.setattr(os, "link", full)
+        monkeypatch.setattr(os, "replace", full)
+    elif where == "log":  # the log cannot take the sixth item, and then nothing at all
+        real_append = manifest.ManifestLog.append
+
+        def append(self, **record):
             count["n"] += 1
-            if count["n"] >= 5:
-                full()
-            return real_write(*a, **k)
+            if count["n"] >= 7:
+                monkeypatch.setattr(files, "_write_all", full)
+                raise files.cannot_write(self.path, OSError(errno.ENOSPC, os.strerror(28)))
+            return real_append(self, **record)
 
-        monkeypatch.setattr(render.sf, "write", write)
-    elif where == "rename":
-        monkeypatch.setattr(render.os, "link", full)
-        monkeypatch.setattr(render.os, "replace", full)
-    else:
-        real_dump = bank.json.dump
-
-        def dump(*a, **k):
-            count["n"] += 1
-            if count["n"] >= 2:
-                full()
-            return real_dump(*a, **k)
-
-        monkeypatch.setattr(bank.json, "dump", dump)
+        monkeypatch.setattr(manifest.ManifestLog, "append", append)
+    else:  # every WAV went in; the final manifest.json cannot be written
+        monkeypatch.setattr(files, "_write_all", lambda fd, data: full() if bytes(
+            data[:2]) == b"{\n" else real_write(fd, data))
     with pytest.raises(OutputError) as info:
         generate_sounds(model_file, out, n=12, seed=2)
     msg = str(info.value)
-    assert "\n" not in msg and "No space left on device" in msg and str(out) in msg
+    assert "\n" not in msg and msg.endswith("cannot write (No space left on device)"), msg
+    assert msg.startswith(str(out))
     monkeypatch.undo()
     for name, data in before.items():  # earlier outputs untouched
         assert (out / name).read_bytes() == data
-    assert not [p.name for p in out.iterdir() if p.name.startswith(".")]
-    if where == "manifest":  # it could not be rewritten: the last written one stands
-        assert (out / "manifest.json").read_bytes() != b""
-        json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+    wavs = _check_outputs(out, folded=False)  # what the loader reads: manifest.json + the log
+    from pipeline.manifest import load_manifest
+
+    m = load_manifest(out)
+    if where == "manifest":  # the last manifest.json stands; the log completes it
+        assert (out / "manifest.json").read_bytes() == manifest_before
+        assert len(wavs) == len(first) + 12 and m["complete"] is True
     elif where == "rename":  # nothing new reached its name; the first manifest stands
-        assert _check_outputs(out, complete=True) == sorted(first)
+        assert wavs == sorted(first) and m["complete"] is False
         assert (out / "manifest.json").read_bytes() == manifest_before
     else:
-        wavs = _check_outputs(out, complete=False)
-        assert set(first) <= set(wavs) and len(wavs) == len(first) + 4
+        assert set(first) <= set(wavs) and len(wavs) == len(first) + (4 if where == "wav" else 5)
+        assert m["complete"] is False
+    assert [r["run"] for r in m["runs"]] == [1, 2]
+    # the next run into the folder folds what was left and goes on after it
+    again = generate_sounds(model_file, out, n=2, seed=3)["files"]
+    assert set(again).isdisjoint(wavs)
+    _check_outputs(out, complete=True)
+
+
+_FULL_DISK = """
+set -e
+mount -t tmpfs -o size=192k shotsmith-full "$1"
+set +e
+"$2" -m pipeline generate "$3" --out "$1/out" -n 40 --seed 1 --iterations 1 2>"$1/err"
+echo "rc=$?"
+cat "$1/err"
+"$2" -c "
+import json, sys, pathlib
+from pipeline.manifest import load_manifest
+out = pathlib.Path(sys.argv[1])
+m = load_manifest(out)
+print(json.dumps({'items': sorted(it['file'] for it in m['items']),
+                  'wavs': sorted(p.name for p in out.glob('*.wav'))}))
+" "$1/out"
+"""
+
+
+@pytest.mark.slow
+def test_a_real_full_disk_during_generate_names_the_reason(model_file, own_tmp):
+    """A 192 KiB tmpfs in a private mount namespace (util-linux unshare): the system's own
+    ENOSPC, not a simulated one, reaches the user as its words."""
+    import shutil
+
+    unshare = shutil.which("unshare")
+    probe = unshare and subprocess.run([unshare, "-rm", "true"], capture_output=True)
+    if not probe or probe.returncode != 0:
+        pytest.skip("needs unshare -rm (user and mount namespaces) to mount a small tmpfs")
+    mnt = own_tmp / "disk"
+    mnt.mkdir()
+    done = subprocess.run([unshare, "-rm", "sh", "-c", _FULL_DISK, "sh", str(mnt),
+                           sys.executable, str(model_file)], capture_output=True, text=True,
+                          timeout=300)
+    lines = done.stdout.strip().splitlines()
+    assert lines and lines[0] == "rc=1", done.stdout + done.stderr
+    assert len(lines) == 3 and lines[1].startswith(f"error: {mnt}/out/"), lines
+    assert lines[1].endswith(": cannot write (No space left on device)"), lines
+    seen = json.loads(lines[2])
+    assert seen["items"] == seen["wavs"] and 0 < len(seen["wavs"]) < 40
 
 
 @pytest.mark.parametrize("where", ["index", "rows"])
 def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, where):
-    from pipeline import bank
+    from pipeline import bank, files
     from pipeline.bank import open_bank
     from pipeline.ingest import ingest_folder
 
@@ -307,14 +474,14 @@ def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, 
         raise OSError(errno.ENOSPC, "No space left on device")
 
     if where == "index":  # the new index.json cannot be written
-        real_dump = bank.json.dump
+        real_write = files._write_all
 
-        def dump(obj, *a, **k):
-            if isinstance(obj, dict) and "clips" in obj:
+        def write_all(fd, data):
+            if b'"clips"' in bytes(data):
                 full()
-            return real_dump(obj, *a, **k)
+            return real_write(fd, data)
 
-        monkeypatch.setattr(bank.json, "dump", dump)
+        monkeypatch.setattr(files, "_write_all", write_all)
         named = tmp_path / "bank" / "index.json"
     else:  # a spectrogram row cannot be written (a memory map would raise SIGBUS here)
         monkeypatch.setattr(bank.os, "pwrite", full)
@@ -329,25 +496,44 @@ def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, 
     assert not [p.name for p in (tmp_path / "bank").iterdir() if p.name.startswith(".")]
 
 
+def test_what_killed_ingests_left_in_the_bank_is_removed(tmp_path):
+    from pipeline.ingest import ingest_folder
+
+    src, bank = tmp_path / "src", tmp_path / "bank"
+    src.mkdir()
+    for i in range(2):
+        (src / f"s{i}.wav").write_bytes(wav_bytes(hit(16000, seed=i), 16000))
+    ingest_folder(src, bank, load_settings("tiny"), jobs=1)
+    dead = int(Path("/proc/sys/kernel/pid_max").read_text()) + 1  # no such process
+    left = [bank / f".ingest-staging.npy.tmp-{dead}-a1b2c3", bank / f".spectra.npy.tmp-{dead}",
+            bank / f".index.json.tmp-{dead}-00ff00"]
+    live = bank / f".ingest-staging.npy.tmp-{os.getpid()}-a1b2c3"  # an ingest running now
+    mine = bank / f".notes.txt.tmp-{dead}"  # not a bank file: not ours to remove
+    for p in (*left, live, mine):
+        p.write_bytes(b"\0" * 4096)
+    ingest_folder(src, bank, load_settings("tiny"), jobs=1)
+    assert sorted(p.name for p in bank.iterdir() if p.name.startswith(".")) == sorted(
+        [live.name, mine.name])
+
+
 def test_full_disk_while_saving_a_model_keeps_the_last_one(bank, tmp_path, monkeypatch):
-    from pipeline import modelfile
+    from pipeline import files
     from pipeline.modelfile import load_model_file
     from pipeline.train import train_model
 
     bank_dir, preset = bank
     settings = load_settings(preset, {"train": {"epochs": 4, "seed": 2},
                                       "model": {"latent_dim": 4}})
-    real_open = open
+    real_write = files._write_all
     saves = []
 
-    def full_open(file, mode="r", *a, **k):
-        if "w" in mode:
-            saves.append(file)
-            if len(saves) > 2:  # model and checkpoint of epoch 1 went through
-                raise OSError(errno.ENOSPC, "No space left on device", str(file))
-        return real_open(file, mode, *a, **k)
+    def full_write(fd, data):
+        saves.append(fd)
+        if len(saves) > 2:  # model and checkpoint of epoch 1 went through
+            raise OSError(errno.ENOSPC, "No space left on device")
+        return real_write(fd, data)
 
-    monkeypatch.setattr(modelfile, "open", full_open, raising=False)
+    monkeypatch.setattr(files, "_write_all", full_write)
     model = tmp_path / "model.pt"
     with pytest.raises(OutputError) as info:
         train_model(bank_dir, model, settings)

@@ -25,6 +25,7 @@ from pipeline.bank import REPORT_FILE, open_bank
 from pipeline.config import RenderSpec, load_settings
 from pipeline.errors import AudioError, ShotsmithError
 from pipeline.ingest import ingest_folder, load_clip
+from pipeline.manifest import load_manifest
 
 TINY = load_settings("tiny", {"render": {"iterations": 2}})
 SPEC = TINY.audio
@@ -177,7 +178,7 @@ def test_resynth_lists_every_case_writes_only_into_out_and_leaves_source_alone(c
     out = tmp_path / "out"
     s = resynth_folder(root, out, TINY, jobs=1)
     assert tree_digest(root) == before
-    manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+    manifest = load_manifest(out)
     accepted = {it["source"] for it in manifest["items"]}
     reasons = {sk["path"]: sk["reason"] for sk in manifest["skipped"]}
     reasons |= {f["source"]: f["reason"] for f in manifest.get("failed", [])}
@@ -316,7 +317,7 @@ def test_paths_that_are_not_utf8_reach_every_json_file(tmp_path, untrained_model
     resynth_folder(src, tmp_path / "re", TINY, jobs=1)
     v = vary_sound(untrained_model, str(odd), tmp_path / "v", n=1, seed=0,
                    render=RenderSpec(iterations=1))
-    manifest = json.loads((tmp_path / "v" / "manifest.json").read_text(encoding="utf-8"))
+    manifest = load_manifest(tmp_path / "v")
     assert manifest["items"][0]["sources"] == [str(odd)]
     assert Path(manifest["request"]["sound"]).is_file()
     assert v["files"] == ["vary-caf-00.wav"]

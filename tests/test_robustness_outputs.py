@@ -103,6 +103,14 @@ def test_nothing_is_replaced_without_overwrite(world, tmp_path, command):
         _ok(args)
     before = tree_digest(out) if out.exists() else None
     model_bytes = model.read_bytes()
+    if command in ("generate", "vary"):  # numbered sounds: a second batch goes after the first
+        first = {p.name: p.read_bytes() for p in out.glob("*.wav")}
+        _ok(args)
+        assert {n: (out / n).read_bytes() for n in first} == first
+        assert len(list(out.glob("*.wav"))) == 2 * len(first)
+        _ok([*args, "--overwrite"])  # and --overwrite replaces the same names again
+        assert len(list(out.glob("*.wav"))) == 2 * len(first)
+        return
     result = runner.invoke(app, [str(a) for a in args])  # the same again, without --overwrite
     assert result.exit_code == 1, result.output
     line = result.stderr.strip()
@@ -150,3 +158,77 @@ def test_names_from_user_text_stay_inside_the_output_folder(tmp_path):
 
 def _all_files(root: Path) -> list[Path]:
     return [Path(d, f) for d, _, files in os.walk(root) for f in files]
+
+
+@pytest.fixture(scope="module")
+def library_model(world, tmp_path_factory):
+    """A bank of the world's library and a model file that records that bank."""
+    from modelfiles import model_dict
+
+    from pipeline.modelfile import save_atomic
+
+    root, src, preset = world
+    work = tmp_path_factory.mktemp("lib")
+    _ok(["ingest", src, "--bank", work / "bank", "--preset", preset, "--jobs", "1"])
+    d = model_dict(load_settings(preset))
+    d["bank"]["path"] = str((work / "bank").resolve())
+    save_atomic(d, work / "m.pt")
+    return work / "bank", work / "m.pt"
+
+
+@pytest.mark.parametrize("via", ["path", "symlink"])
+@pytest.mark.parametrize("command", ["generate", "vary", "interpolate", "train", "inspect"])
+def test_no_output_goes_inside_the_library(world, library_model, tmp_path, command, via):
+    """The model records its bank and the bank its source: outputs inside that library would
+    be taken for library sounds by the next ingest, so each command refuses them."""
+    root, src, preset = world
+    bank, model = library_model
+    inside = src / "renders"
+    if via == "symlink":  # the same folder under another name
+        (tmp_path / "lib").symlink_to(src, target_is_directory=True)
+        inside = tmp_path / "lib" / "renders"
+    target = inside / "m.pt" if command == "train" else inside
+    args = {
+        "generate": ["generate", model, "--out", target, "-n", "1", *QUICK],
+        "vary": ["vary", model, "kick_00", "--out", target, "-n", "1", *QUICK],
+        "interpolate": ["interpolate", model, "kick_00", "hat_01", "--out", target, *QUICK],
+        "train": ["train", bank, "--model", target, "--preset", preset, "--epochs", "1"],
+        "inspect": ["inspect", model, "--out", target, "--bank", bank],
+    }[command]
+    if command == "train":
+        inside.mkdir(exist_ok=True)  # a model file needs an existing folder
+    before = tree_digest(src)
+    result = runner.invoke(app, [str(a) for a in args])
+    assert result.exit_code == 1, result.output
+    option = "--model" if command == "train" else "--out"
+    assert result.stderr.strip() == (
+        f"error: {target}: {option} must not be inside the library {src.resolve()} (the source "
+        f"of bank {bank.resolve()}): the next ingest would take what is written there for "
+        "library sounds")
+    if command == "train":
+        inside.rmdir()
+    assert tree_digest(src) == before and not inside.exists()
+
+
+def test_long_interpolation_names_keep_their_steps_and_never_collide(tmp_path):
+    """Two morphs whose clip names share a long beginning: each file keeps its step number
+    (so the files sort in path order) and the two requests get different names."""
+    from pipeline.create import interpolate_sounds
+    from pipeline.modelfile import save_atomic
+
+    settings = load_settings("tiny")
+    d = model_dict(settings, n_clips=3)
+    stem = "field recording, rain on a tin roof, close microphone " * 3
+    d["clip_names"] = [stem + "take 1", stem + "take 2", "kick"]
+    model = tmp_path / "m.pt"
+    save_atomic(d, model)
+    out = tmp_path / "out"
+    runs = [interpolate_sounds(model, [a, "kick"], out, steps=12, seed=0,
+                               render=RenderSpec(iterations=1))["files"]
+            for a in (stem + "take 1", stem + "take 2")]  # the second without --overwrite
+    for files in runs:
+        assert files == sorted(files) and len(set(files)) == 12
+        assert [f.rsplit("-", 1)[1] for f in files] == [f"{i:02d}.wav" for i in range(12)]
+        assert all(len(f.encode()) <= 255 for f in files)
+    assert set(runs[0]).isdisjoint(runs[1])
+    assert len(list(out.glob("*.wav"))) == 24

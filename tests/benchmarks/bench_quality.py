@@ -55,6 +55,7 @@ import corpus  # noqa: E402
 from pipeline import quality  # noqa: E402
 from pipeline.config import AudioSpec, load_settings  # noqa: E402
 from pipeline.frontend import load_clip  # noqa: E402
+from pipeline.manifest import load_manifest  # noqa: E402
 from pipeline.spectra import (  # noqa: E402
     clip_to_unit,
     log_spectral_distance,
@@ -86,7 +87,7 @@ def _real_spec(audio: AudioSpec) -> AudioSpec:
 
 
 def _wavs(folder: Path) -> tuple[list[np.ndarray], int, list[dict]]:
-    manifest = json.loads((folder / "manifest.json").read_text())
+    manifest = load_manifest(folder)
     ys, srs = [], set()
     for item in manifest["items"]:
         y, sr = sf.read(folder / item["file"], dtype="float64")
