@@ -34,7 +34,7 @@ import numpy as np
 from pipeline.errors import ParameterError
 
 MAX_COMPONENTS = 8
-NEAR_BANDWIDTH = 0.4  # a category's kernels: this fraction of its codes' spread
+NEAR_BANDWIDTH = 0.6  # a category's kernels: this fraction of its codes' spread
 SHRINK_POINTS = 4.0
 POINTS_PER_PARAMETER_SET = 2  # a component needs about 2 (D + 1) codes of its own
 _LOG_2PI = float(np.log(2.0 * np.pi))
