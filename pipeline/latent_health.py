@@ -21,7 +21,6 @@ from pipeline.latent import (
     check_codes,
     check_count,
     nearest_codes,
-    nearest_other_distances,
     sample_prior,
 )
 
@@ -149,39 +148,48 @@ def category_balance(
     return {"shares": shares, "total_variation": tv, **v}
 
 
-def holes(prior_samples: np.ndarray, codes: np.ndarray, percentile: float = 95) -> dict[str, Any]:
-    """Share of prior samples that fall in empty regions between the training codes.
+HOLE_NEIGHBOUR = 5  # which nearest training code measures a sample's distance to the library
 
-    A prior sample is in a hole when its nearest training code is farther than
-    the ``percentile``-th percentile of the training codes' own nearest-neighbour
-    distances. When the codes fill the prior this is about 1 - percentile/100
-    (5% by default).
+
+def holes(prior_samples: np.ndarray, codes: np.ndarray, percentile: float = 95) -> dict[str, Any]:
+    """Share of samples that fall in empty regions between the training codes.
+
+    A sample is in a hole when its ``HOLE_NEIGHBOUR``-th nearest training code is
+    farther than the ``percentile``-th percentile of the training codes' own
+    distances to their ``HOLE_NEIGHBOUR``-th nearest other code (fewer neighbours
+    for a library of fewer codes). When the samples follow the codes' own
+    distribution this is about 1 - percentile/100 (5% by default). The fifth
+    neighbour, not the first, so that near-duplicate clips (velocity layers, small
+    variations of one sound) do not make every new sound look like a hole.
 
     Returns
     -------
     dict with ``share``, ``expected_share``, ``threshold``, ``percentile``,
-    ``rating`` and ``verdict``.
+    ``neighbour``, ``rating`` and ``verdict``.
     """
+    from scipy.spatial import cKDTree
+
     codes = check_codes(codes, "codes", min_rows=2)
     if not 0 < percentile < 100:
         raise ParameterError(f"percentile={percentile!r} must be between 0 and 100")
-    threshold = float(np.percentile(nearest_other_distances(codes), percentile))
-    _, dist = nearest_codes(prior_samples, codes)
-    if len(dist) == 0:
-        raise ParameterError("prior_samples is empty")
+    samples = check_codes(prior_samples, "samples")
+    k = min(HOLE_NEIGHBOUR, len(codes) - 1)
+    tree = cKDTree(codes)
+    own = tree.query(codes, k=k + 1)[0].reshape(len(codes), -1)[:, k]
+    threshold = float(np.percentile(own, percentile))
+    dist = tree.query(samples, k=k)[0].reshape(len(samples), -1)[:, k - 1]
     share, expected = float(np.mean(dist > threshold)), round(1.0 - percentile / 100.0, 12)
     if share <= 2 * expected:
-        v = _verdict("good", f"{share:.0%} of random samples land away from every training "
-                     f"sound (about {expected:.0%} is normal)")
+        v = _verdict("good", f"{share:.0%} of random samples land away from the training "
+                     f"sounds (about {expected:.0%} is normal)")
     elif share <= 5 * expected:
         v = _verdict("fair", f"{share:.0%} of random samples land in gaps between training "
-                     "sounds; a lower --temperature or a larger beta helps")
+                     "sounds; a lower --temperature helps")
     else:
         v = _verdict("poor", f"{share:.0%} of random samples land in gaps between training "
-                     "sounds and may decode to mush; try a larger beta, more epochs or a "
-                     "lower --temperature")
+                     "sounds and may decode to mush; try more epochs or a lower --temperature")
     return {"share": share, "expected_share": expected, "threshold": threshold,
-            "percentile": float(percentile), **v}
+            "percentile": float(percentile), "neighbour": k, **v}
 
 
 def health_report(

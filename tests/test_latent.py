@@ -285,6 +285,16 @@ def test_holes_near_five_percent_when_codes_fill_the_prior():
     assert h["share"] > 0.9 and h["rating"] == "poor"
 
 
+def test_near_duplicate_codes_do_not_make_every_new_sample_a_hole():
+    # every clip twice, a hair apart (velocity layers): the nearest code would be a
+    # twin, so only the fifth-nearest measures how far a sample is from the library
+    rng = np.random.default_rng(17)
+    codes = rng.standard_normal((400, 6))
+    twins = np.concatenate([codes, codes + 1e-4 * rng.standard_normal(codes.shape)])
+    h = health.holes(latent.sample_prior(20000, 6, rng=18), twins)
+    assert h["share"] < 0.1 and h["neighbour"] == 5
+
+
 def _two_clusters(n_a: int, n_b: int) -> tuple[np.ndarray, list[str]]:
     rng = np.random.default_rng(16)
     a = rng.normal(0, 0.1, (n_a, 3)) + [-4, 0, 0]
