@@ -8,7 +8,10 @@ for audio when no learned embedding is at hand), all at :data:`DESCRIPTOR_SR`:
   librosa.feature.mfcc, 40 mel bands, frames of 2048 with a hop of 512),
 * spectral centroid (log kHz) and flatness (log), mean and standard deviation,
   all of these over the frames within 60 dB of the loudest (librosa.feature): what
-  lies below belongs to the decay descriptors,
+  lies below belongs to the decay descriptors. Flatness (the geometric over the
+  arithmetic mean of the power spectrum) is taken with every bin floored 60 dB below
+  its frame's loudest: the geometric mean follows the quietest bins, and an inaudible
+  noise floor (or its absence) would otherwise decide it,
 * decay: log of the time the frame RMS takes from its peak to fall for good
   below -20 dB and -40 dB re peak, and the level of the last 200 ms re peak (dB).
 
@@ -46,6 +49,14 @@ def _decay_time(env_db: np.ndarray, drop_db: float, hop_s: float) -> float:
     return float(above[-1]) * hop_s
 
 
+def floored_flatness(power: np.ndarray, floor_db: float = _ACTIVE_DB) -> np.ndarray:
+    """Spectral flatness of each frame (column) of a power spectrogram, every bin floored
+    ``-floor_db`` dB below its frame's loudest bin: ``gmean(P) / mean(P)``."""
+    P = np.maximum(power, power.max(axis=0, keepdims=True) * 10.0 ** (floor_db / 10.0))
+    P = np.maximum(P, 1e-30)
+    return np.exp(np.mean(np.log(P), axis=0)) / np.mean(P, axis=0)
+
+
 def describe(y: np.ndarray, sr: int) -> np.ndarray:
     """Descriptor vector of one clip (see the module docstring), float64 ``(D,)``.
 
@@ -76,7 +87,7 @@ def describe(y: np.ndarray, sr: int) -> np.ndarray:
     active = env_db >= _ACTIVE_DB
     mfcc = mfcc[:, active]
     centroid = librosa.feature.spectral_centroid(S=S, sr=DESCRIPTOR_SR)[0][active]
-    flatness = librosa.feature.spectral_flatness(S=S, amin=1e-10)[0][active]
+    flatness = floored_flatness(power[:, active])
     log_centroid = np.log(np.maximum(centroid, 20.0) / 1000.0)
     log_flatness = np.log(np.maximum(flatness, 1e-10))
     hop_s = _HOP / DESCRIPTOR_SR

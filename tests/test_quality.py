@@ -122,6 +122,18 @@ def test_noise_is_flatter_than_a_tone(rng):
     assert noise[i] > tone[i] + 3.0  # about 0.5 against 1e-3 or less (log units)
 
 
+def test_floored_flatness_is_librosa_flatness_when_no_bin_is_below_the_floor(rng):
+    # librosa.feature.spectral_flatness (gmean / mean of the power spectrum) as reference
+    import librosa
+
+    P = rng.uniform(0.5, 2.0, size=(1025, 20))
+    ref = librosa.feature.spectral_flatness(S=np.sqrt(P), power=2.0, amin=1e-30)[0]
+    np.testing.assert_allclose(quality.floored_flatness(P), ref, rtol=1e-9)
+    # a frame with an empty band: the floor at -60 dB keeps it from reading near zero
+    P[:300] = 0.0
+    assert np.all(quality.floored_flatness(P) > 1e-3)
+
+
 @pytest.mark.parametrize("tau", [0.05, 0.15])
 def test_decay_time_of_an_exponential(rng, tau):
     # power falls 20 log10(e) / tau dB per second: -20 dB at t = tau ln(10), -40 at twice that

@@ -176,6 +176,15 @@ def run(args) -> dict:
     log(f"trained {trained['epochs']} epochs in {train_s:.0f} s ({trained['stopped']}), "
         f"{trained['clips_per_second']:.0f} clips/s of steps")
     mf = load_model_file(model)
+    if args.reuse and hasattr(mf, "stored_samplers"):
+        mf.stored_samplers = None  # fitted again by today's code, so runs compare alike
+        import torch
+
+        from pipeline.modelfile import save_atomic  # generate_sounds loads the file itself
+
+        payload = torch.load(model, weights_only=True)
+        payload["sampler"] = None
+        save_atomic(payload, model)
     audio, render = mf.audio, mf.settings.render
 
     def describe(ys, sr):
