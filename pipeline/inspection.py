@@ -39,8 +39,11 @@ SC_GOOD_DB = -10.0  # about 30 % relative magnitude error
 SC_FAIR_DB = -5.0  # about 56 %
 # Rule of thumb (ours): descriptor distance of each held-out clip's reconstruction to its
 # original, over the typical distance between two originals (pipeline.quality).
+# At 1 a reconstruction lies as far from its original as the nearest other original
+# does: like a sibling (another take of the same kind of sound), details lost. Beyond
+# 1.5 it may no longer be recognisable as its kind.
 PAIRED_GOOD = 0.5
-PAIRED_FAIR = 1.0
+PAIRED_FAIR = 1.5
 PAIRED_MIN_CLIPS = 4  # fewer clips cannot give a typical distance between originals
 # Spectral convergence that phase reconstruction adds to the decoded spectra's own
 # (audio against originals, minus decoded magnitudes against originals).

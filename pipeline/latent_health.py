@@ -88,18 +88,21 @@ def prior_match(mu: np.ndarray, logvar: np.ndarray | None = None) -> dict[str, A
     kl = 0.5 * (float(eig.sum()) + float(m @ m) - d - float(np.log(eig).sum()))
     kl = max(kl, 0.0)
     norm, per_dim = float(np.linalg.norm(m)), kl / d
+    # generate samples the mixture fitted to the codes by default; only --prior normal
+    # draws from N(0, I), so that is what this figure speaks for
     if per_dim <= 0.1 and norm <= 0.5:
-        v = _verdict("good", "codes are centred and spread like the prior; random samples "
-                     "land where the training sounds are")
+        v = _verdict("good", "codes are centred and spread like the prior; even "
+                     "--prior normal samples land where the training sounds are")
     elif per_dim <= 0.5 and norm <= 1.5:
-        v = _verdict("fair", "codes are a little off the prior; most random samples will "
-                     "be usable; more epochs or a larger beta can help")
+        v = _verdict("fair", "codes are a little off the prior; most --prior normal samples "
+                     "will be usable (the default sampler follows the codes)")
     elif norm > 1.5:
-        v = _verdict("poor", "codes sit far from the origin, random samples will be off; "
-                     "try a larger beta or more epochs")
+        v = _verdict("poor", "codes sit far from the origin: --prior normal samples will be "
+                     "off (the default sampler follows the codes; use it)")
     else:
-        v = _verdict("poor", "codes are squeezed or stretched compared with the prior, "
-                     "random samples will be off; try a larger beta or more epochs")
+        v = _verdict("poor", "codes are squeezed or stretched compared with the prior: "
+                     "--prior normal samples will be off (the default sampler follows the "
+                     "codes; use it)")
     return {"mean_norm": norm, "kl_gaussian_to_prior": kl, "kl_per_dim": per_dim, **v}
 
 
