@@ -120,7 +120,11 @@ TrimOpt = Annotated[
     typer.Option("--trim/--no-trim",
                  help="End each file where its sound ends (default: full length, silent tail)."),
 ]
-SeedOpt = Annotated[int | None, typer.Option("--seed", help="Random seed (repeatable output).")]
+SEED_MAX = 2**32 - 1  # pipeline.create.MAX_SEED (not imported: it would load numpy for --help)
+COUNT_MAX = 100_000  # pipeline.create.MAX_SOUNDS
+SPREAD_MAX = 100.0  # pipeline.latent.MAX_SPREAD
+SeedOpt = Annotated[int | None, typer.Option("--seed", min=0, max=SEED_MAX,
+                                             help="Random seed (repeatable output).")]
 JobsOpt = Annotated[
     int | None,
     typer.Option("--jobs", min=1, help="Decoding processes (default: all cores)."),
@@ -337,9 +341,10 @@ def format_train_summary(s: dict[str, Any]) -> str:
 def generate(
     model: Annotated[Path, typer.Argument(help="Model file written by 'shotsmith train'.")],
     out: Annotated[Path, typer.Option("--out", help="Output folder.")],
-    n: Annotated[int, typer.Option("-n", "--count", min=1, help="How many one-shots.")] = 16,
+    n: Annotated[int, typer.Option("-n", "--count", min=1, max=COUNT_MAX,
+                                   help="How many one-shots.")] = 16,
     temperature: Annotated[
-        float, typer.Option("--temperature", min=0.0,
+        float, typer.Option("--temperature", min=0.0, max=SPREAD_MAX,
                             help="Spread around where the library lives (1 = as fitted).")
     ] = 1.0,
     near: Annotated[
@@ -381,7 +386,8 @@ def interpolate(
         typer.Argument(help="Two or more clip names (or audio files) to pass through, in order."),
     ] = None,
     out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("."),
-    steps: Annotated[int, typer.Option("--steps", min=2, help="Sounds along the path.")] = 8,
+    steps: Annotated[int, typer.Option("--steps", min=2, max=COUNT_MAX,
+                                       help="Sounds along the path.")] = 8,
     path: Annotated[str, typer.Option("--path", help="slerp (default) or lerp.")] = "slerp",
     jobs_file: Annotated[
         Path | None,
@@ -424,10 +430,11 @@ def vary(
     model: Annotated[Path, typer.Argument(help="Model file.")],
     sound: Annotated[str, typer.Argument(help="A clip name from the model, or an audio file.")],
     out: Annotated[Path, typer.Option("--out", help="Output folder.")],
-    n: Annotated[int, typer.Option("-n", "--count", min=1, help="How many variations.")] = 8,
+    n: Annotated[int, typer.Option("-n", "--count", min=1, max=COUNT_MAX,
+                                   help="How many variations.")] = 8,
     amount: Annotated[
         float,
-        typer.Option("--amount", min=0.0, help="Spread; 0 = its reconstruction."),
+        typer.Option("--amount", min=0.0, max=SPREAD_MAX, help="Spread; 0 = its reconstruction."),
     ] = 1.0,
     seed: SeedOpt = None,
     iterations: IterOpt = None,

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import math
 import os
 import sys
 import typing
@@ -41,6 +42,55 @@ def _fail(where: str, msg: str) -> None:
     raise PresetError(f"{where}: {msg}", key=where if "." in where else None)
 
 
+# Every numeric setting: its lower and upper bound (inclusive) and unit. A value outside them,
+# or one that is not finite (TOML has nan and inf), is refused naming the key, in presets and
+# in the settings stored in banks, model files and manifests alike. Checks between keys
+# (hop_length divides n_fft, db_floor below db_ceiling) stay in each spec.
+LIMITS: dict[str, tuple[float, float, str]] = {
+    "audio.sample_rate": (4000, 192000, " Hz"), "audio.duration": (0.05, 30.0, " seconds"),
+    "audio.n_fft": (64, 65536, " samples"), "audio.hop_length": (1, 65536, " samples"),
+    "audio.db_floor": (-300.0, 0.0, " dB"), "audio.db_ceiling": (-200.0, 60.0, " dB"),
+    "audio.peak_db": (-60.0, 0.0, " dBFS"), "audio.silence_db": (-200.0, 0.0, " dBFS"),
+    "audio.onset_db": (-200.0, 0.0, " dB"), "audio.preroll_ms": (0.0, 1000.0, " ms"),
+    "audio.fade_ms": (0.0, 10000.0, " ms"), "audio.min_ms": (0.0, 10000.0, " ms"),
+    "model.latent_dim": (1, 512, ""), "model.width": (8, 4096, ""), "model.depth": (1, 8, ""),
+    "model.kernel_size": (1, 63, ""),
+    "train.epochs": (1, 1_000_000, ""), "train.batch_size": (1, 65536, ""),
+    "train.learning_rate": (0.0, 1.0, ""), "train.weight_decay": (0.0, 10.0, ""),
+    "train.lr_warmup_epochs": (0, 1_000_000, ""), "train.min_lr_ratio": (0.0, 1.0, ""),
+    "train.beta": (0.0, 1000.0, ""), "train.kl_warmup_epochs": (0, 1_000_000, ""),
+    "train.free_bits": (0.0, 100.0, " nats"), "train.loud_weight": (0.0, 100.0, ""),
+    "train.val_fraction": (0.0, 0.9, ""), "train.patience": (1, 1_000_000, ""),
+    "train.seed": (0, 2**32 - 1, ""),
+    "render.iterations": (0, 10000, ""), "render.momentum": (0.0, 1.5, ""),
+    "render.peak_db": (-60.0, 0.0, " dBTP"), "render.loudness": (-70.0, 0.0, " LUFS"),
+    "render.fade_in_ms": (0.0, 10000.0, " ms"), "render.fade_out_ms": (0.0, 10000.0, " ms"),
+    "render.batch_size": (1, 4096, ""), "render.output_rate": (8000, 192000, " Hz"),
+}
+
+
+# Spectrogram cells (bins x frames) per clip: 8x the long preset's; beyond it one clip's
+# spectrum alone takes many megabytes and a bank or a batch runs out of memory.
+MAX_CELLS = 1 << 21
+
+
+def _check_limits(spec: Any, table: str) -> None:
+    """Every numeric field of ``spec`` finite and within :data:`LIMITS`."""
+    for f in dataclasses.fields(spec):
+        where, value = f"{table}.{f.name}", getattr(spec, f.name)
+        if where not in LIMITS or value is None or isinstance(value, bool):
+            continue
+        if not isinstance(value, (int, float)):
+            continue  # the type check names it (settings built from a mapping)
+        lo, hi, unit = LIMITS[where]
+        span = f"between {lo:g} and {hi:g}{unit}" if isinstance(lo, float) else \
+            f"between {lo} and {hi}{unit}"
+        if not math.isfinite(value):
+            _fail(where, f"{value} must be a finite number ({span})")
+        if not lo <= value <= hi:
+            _fail(where, f"{value} must be {span}")
+
+
 @dataclass(frozen=True)
 class AudioSpec:
     """The audio front end and the spectrogram scale; fixes the model's input shape."""
@@ -61,11 +111,8 @@ class AudioSpec:
     spectra_dtype: str = "float16"
 
     def __post_init__(self) -> None:
+        _check_limits(self, "audio")
         w = "audio"
-        if not 4000 <= self.sample_rate <= 192000:
-            _fail(f"{w}.sample_rate", f"{self.sample_rate} must be between 4000 and 192000 Hz")
-        if not 0.05 <= self.duration <= 30.0:
-            _fail(f"{w}.duration", f"{self.duration} must be between 0.05 and 30 seconds")
         if self.n_fft < 64 or self.n_fft % 2:
             _fail(f"{w}.n_fft", f"{self.n_fft} must be an even number of at least 64")
         if self.hop_length < 1 or self.n_fft % self.hop_length or self.n_fft // self.hop_length < 2:
@@ -89,6 +136,9 @@ class AudioSpec:
             _fail(
                 f"{w}.duration", f"{self.duration} s is shorter than one n_fft={self.n_fft} window"
             )
+        if self.n_bins * self.n_frames > MAX_CELLS:
+            _fail(f"{w}.hop_length", f"{self.n_bins} bins x {self.n_frames} frames per clip is "
+                  f"more than {MAX_CELLS:,} (a longer hop, a shorter n_fft or duration)")
 
     @property
     def n_samples(self) -> int:
@@ -125,12 +175,7 @@ class ModelSpec:
     kernel_size: int = 5
 
     def __post_init__(self) -> None:
-        if not 1 <= self.latent_dim <= 512:
-            _fail("model.latent_dim", f"{self.latent_dim} must be between 1 and 512")
-        if not 8 <= self.width <= 4096:
-            _fail("model.width", f"{self.width} must be between 8 and 4096")
-        if not 1 <= self.depth <= 8:
-            _fail("model.depth", f"{self.depth} must be between 1 and 8")
+        _check_limits(self, "model")
         if self.kernel_size < 1 or self.kernel_size % 2 == 0:
             _fail("model.kernel_size", f"{self.kernel_size} must be a positive odd number")
 
@@ -155,6 +200,7 @@ class TrainSpec:
     seed: int = 0
 
     def __post_init__(self) -> None:
+        _check_limits(self, "train")
         if self.epochs < 1:
             _fail("train.epochs", f"{self.epochs} must be at least 1")
         if self.batch_size < 1:
@@ -164,8 +210,6 @@ class TrainSpec:
         for key in ("weight_decay", "beta", "free_bits"):
             if getattr(self, key) < 0:
                 _fail(f"train.{key}", f"{getattr(self, key)} must not be negative")
-        if not 0 <= self.loud_weight <= 100:
-            _fail("train.loud_weight", f"{self.loud_weight} must be between 0 and 100")
         if self.decoder_variance not in DECODER_VARIANCES:
             _fail("train.decoder_variance",
                   f"{self.decoder_variance!r} must be one of {', '.join(DECODER_VARIANCES)}")
@@ -194,26 +238,17 @@ class RenderSpec:
     output_rate: int | None = None  # WAV sample rate (soxr after reconstruction); None = analysis
 
     def __post_init__(self) -> None:
-        if not 0 <= self.iterations <= 10000:
-            _fail("render.iterations", f"{self.iterations} must be between 0 and 10000")
-        if not 0 <= self.momentum <= 1.5:
-            _fail("render.momentum", f"{self.momentum} must be between 0 and 1.5")
+        _check_limits(self, "render")
         if self.phase_init not in PHASE_INITS:
             _fail(
                 "render.phase_init", f"{self.phase_init!r} must be one of {', '.join(PHASE_INITS)}"
             )
         if self.bit_depth not in BIT_DEPTHS:
             _fail("render.bit_depth", f"{self.bit_depth!r} must be one of {', '.join(BIT_DEPTHS)}")
-        if not -60 <= self.peak_db <= 0:
-            _fail("render.peak_db", f"{self.peak_db} must be between -60 and 0 dBTP")
-        if self.loudness is not None and not -70 <= self.loudness <= 0:
-            _fail("render.loudness", f"{self.loudness} must be between -70 and 0 LUFS")
         if self.fade_in_ms < 0 or self.fade_out_ms < 0:
             _fail("render.fade_in_ms", "fades must not be negative")
         if self.batch_size < 1:
             _fail("render.batch_size", f"{self.batch_size} must be at least 1")
-        if self.output_rate is not None and not 8000 <= self.output_rate <= 192000:
-            _fail("render.output_rate", f"{self.output_rate} must be between 8000 and 192000 Hz")
 
 
 SPEC_TYPES: dict[str, type] = {
@@ -340,7 +375,13 @@ def load_settings(
     # recorded settings (and the resume command built from them) find it again
     shipped = path.resolve().parent == presets_dir().resolve()
     name = path.stem if shipped else str(path)
-    return settings_from_dict(data, overrides, name=name, where=str(path))
+    try:
+        return settings_from_dict(data, overrides, name=name, where=str(path))
+    except PresetError as exc:
+        table, _, key = (exc.key or "").partition(".")
+        if not key or (overrides or {}).get(table, {}).get(key) is not None:
+            raise  # a table error names the file already; an override names itself
+        raise PresetError(f"{path}: {exc}", key=exc.key) from None
 
 
 def settings_from_dict(
@@ -363,6 +404,8 @@ def settings_from_dict(
             raise PresetError(f"{where}: unknown table [{table}] (known: {', '.join(SPEC_TYPES)})")
     specs = {}
     for table, cls in SPEC_TYPES.items():
+        if not isinstance(data.get(table, {}), dict):
+            raise PresetError(f"{where}: [{table}] must be a table of settings")
         merged = dict(data.get(table, {}))
         for key, value in (overrides or {}).get(table, {}).items():
             if value is not None:

@@ -51,8 +51,32 @@ def _load(model):
     return model if isinstance(model, ModelFile) else load_model_file(model)
 
 
+# At most this many sounds per request (generate -n, vary -n, interpolate --steps, a jobs
+# file in all): every item's code and record are held while its batches render; a larger
+# set is made by running again into the same folder.
+MAX_SOUNDS = 100_000
+MAX_SEED = 2**32 - 1  # numpy and torch both take it; -1 and 2**64 they refuse
+
+
+def check_seed(seed: Any) -> int:
+    """A seed as an int in [0, MAX_SEED], or a ParameterError naming it."""
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) \
+            or not 0 <= seed <= MAX_SEED:
+        raise ParameterError(f"seed={seed!r} must be a whole number between 0 and {MAX_SEED}")
+    return int(seed)
+
+
+def check_sounds(n: Any, name: str, *, low: int = 1) -> int:
+    """A count of sounds to render, between ``low`` and :data:`MAX_SOUNDS`."""
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) \
+            or not low <= n <= MAX_SOUNDS:
+        raise ParameterError(f"{name}={n!r} must be a whole number between {low} and "
+                             f"{MAX_SOUNDS} (render more by running again into the folder)")
+    return int(n)
+
+
 def _seed(seed: int | None) -> int:
-    return int(secrets.randbits(31)) if seed is None else int(seed)
+    return int(secrets.randbits(31)) if seed is None else check_seed(seed)
 
 
 def resolve_sound(mf, text: str) -> Waypoint:
@@ -168,15 +192,14 @@ def generate_sounds(
     (:mod:`pipeline.sampler`), with ``near`` that category's own mixture; ``"normal"``
     samples the VAE's prior N(0, T²I). ``temperature`` T scales the spread.
     """
-    if n < 1:
-        raise ParameterError(f"n={n} must be at least 1")
+    n, seed = check_sounds(n, "n"), _seed(seed)
+    latent.check_spread(temperature, "temperature")
     if prior not in PRIORS:
         raise ParameterError(f"prior={prior!r} must be one of {', '.join(PRIORS)}")
     if prior == "normal" and near is not None:
         raise ParameterError("near= samples the category's fitted mixture; it does not "
                              "combine with prior='normal'")
     mf = _load(model)
-    seed = _seed(seed)
     rng = np.random.default_rng(seed)
     sources: list[str] = [] if near is None else [f"category:{near}"]
     if prior == "normal":
@@ -217,8 +240,7 @@ def _path_items(
         raise ParameterError(f"path={kind!r} must be slerp or lerp")
     if len(points) < 2:
         raise ParameterError("an interpolation needs at least two sounds")
-    if steps < 2:
-        raise ParameterError(f"steps={steps} must be at least 2")
+    steps = check_sounds(steps, "steps", low=2)
     Z = latent.latent_path(np.stack([p.mu for p in points]), steps, kind=kind)
     stem = label or "interpolate-" + "-to-".join(p.label for p in points)
     sources = [p.source.get("clip") or p.source.get("file") for p in points]
@@ -250,8 +272,8 @@ def interpolate_sounds(
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """``steps`` sounds along one continuous path through the waypoints (slerp, White 2016)."""
+    steps, seed = check_sounds(steps, "steps", low=2), _seed(seed)
     mf = _load(model)
-    seed = _seed(seed)
     points = [resolve_sound(mf, w) for w in waypoints]
     Z, items = _path_items(points, steps, path, seed)
     request = {
@@ -292,6 +314,8 @@ def read_jobs_file(path: Path) -> list[dict[str, Any]]:
             data = tomllib.loads(text)
         except tomllib.TOMLDecodeError as exc:
             raise ShotsmithError(f"{path}: not valid TOML ({exc})") from None
+        if not isinstance(data.get("job", []), list):
+            raise ShotsmithError(f'{path}: jobs are [[job]] tables with sounds = ["A", "B", ...]')
         for k, job in enumerate(data.get("job", []), 1):
             if not isinstance(job, dict) or not isinstance(job.get("sounds"), list):
                 raise ShotsmithError(f'{path}: job {k} needs sounds = ["A", "B", ...]')
@@ -306,25 +330,38 @@ def read_jobs_file(path: Path) -> list[dict[str, Any]]:
         for line, row in enumerate(rows, 2):
             via = [v.strip() for v in (row.get("via") or "").split("|") if v.strip()]
             job: dict[str, Any] = {"where": f"{path}: line {line}"}
-            job["sounds"] = [row["start"].strip(), *via, (row["end"] or "").strip()]
+            job["sounds"] = [(row["start"] or "").strip(), *via, (row["end"] or "").strip()]
             for key in ("steps", "path", "label"):
                 if (row.get(key) or "").strip():
                     job[key] = row[key].strip()
+            if job["sounds"][0] == "" or job["sounds"][-1] == "":
+                raise ShotsmithError(f"{path}: line {line}: needs a 'start' and an 'end' sound")
             jobs.append(job)
     else:
         raise ShotsmithError(f"{path}: jobs file must end in .csv or .toml")
     for job in jobs:
         if "steps" in job:
-            try:
-                job["steps"] = int(job["steps"])
-            except (TypeError, ValueError):
-                where, steps = job["where"], job["steps"]
-                raise ShotsmithError(f"{where}: steps {steps!r} is not a number") from None
+            job["steps"] = _job_steps(job["where"], job["steps"])
+        for key in ("path", "label"):
+            if key in job and not isinstance(job[key], str):
+                raise ShotsmithError(f"{job['where']}: {key} {job[key]!r} must be text")
         if any(not isinstance(s, str) or not s for s in job["sounds"]) or len(job["sounds"]) < 2:
             raise ShotsmithError(f"{job['where']}: needs at least two sound names")
     if not jobs:
         raise ShotsmithError(f"{path}: no jobs found")
     return jobs
+
+
+def _job_steps(where: str, value: Any) -> int:
+    """A job's ``steps``: a whole number (TOML integer or CSV digits), 2 to MAX_SOUNDS; a
+    fraction is refused in both layouts rather than cut to a whole number."""
+    if isinstance(value, str) and value.strip().isascii() and value.strip().isdigit():
+        value = int(value)
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise ShotsmithError(f"{where}: steps {value!r} is not a whole number")
+    if not 2 <= value <= MAX_SOUNDS:
+        raise ShotsmithError(f"{where}: steps {value} must be between 2 and {MAX_SOUNDS}")
+    return value
 
 
 def interpolate_jobs(
@@ -340,9 +377,13 @@ def interpolate_jobs(
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """Many interpolations from one jobs file, rendered into one folder with one manifest."""
-    jobs = read_jobs_file(jobs_file)
+    jobs, seed = read_jobs_file(jobs_file), _seed(seed)
+    check_sounds(steps, "steps", low=2)
+    total = sum(job.get("steps", steps) for job in jobs)
+    if total > MAX_SOUNDS:
+        raise ShotsmithError(f"{jobs_file}: {len(jobs)} jobs of {total} sounds in all; at most "
+                             f"{MAX_SOUNDS} per run (split the file)")
     mf = _load(model)
-    seed = _seed(seed)
     codes, items = [], []
     for job in jobs:
         try:
@@ -387,10 +428,9 @@ def vary_sound(
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """``n`` variations around one sound's posterior; ``amount=0`` gives its reconstruction."""
-    if n < 1:
-        raise ParameterError(f"n={n} must be at least 1")
+    n, seed = check_sounds(n, "n"), _seed(seed)
+    amount = latent.check_spread(amount, "amount")
     mf = _load(model)
-    seed = _seed(seed)
     point = resolve_sound(mf, sound)
     Z = latent.variations(point.mu, point.logvar, n, amount=amount, rng=np.random.default_rng(seed))
     src = [point.source.get("clip") or point.source.get("file")]

@@ -298,7 +298,9 @@ def inspect_model(
     from pipeline.outputs import refuse_library
     from pipeline.sampler import sample_mixture
 
-    out_dir, seed = Path(out_dir), 0 if seed is None else int(seed)
+    from pipeline.create import check_seed
+
+    out_dir, seed = Path(out_dir), 0 if seed is None else check_seed(seed)
     _check_outputs(out_dir, overwrite)
     mf = load_model_file(Path(model_path))
     refuse_library(out_dir, option="--out", model=mf, banks=[] if bank is None else [bank])

@@ -57,10 +57,21 @@ def check_count(n: Any, name: str, *, low: int = 0) -> int:
     return int(n)
 
 
-def _temperature(t: float) -> float:
-    if not np.isfinite(t) or t < 0:
-        raise ParameterError(f"temperature={t!r} must be a finite number >= 0")
+# The widest spread (temperature, vary's amount): 100 times the fitted spread is already far
+# outside anything the decoder saw; beyond it codes overflow to infinity (1e300 * sigma).
+MAX_SPREAD = 100.0
+
+
+def check_spread(t: Any, name: str = "temperature") -> float:
+    """A temperature or amount: finite, between 0 and :data:`MAX_SPREAD`."""
+    if isinstance(t, bool) or not isinstance(t, (int, float, np.number)) or not np.isfinite(t) \
+            or not 0 <= t <= MAX_SPREAD:
+        raise ParameterError(f"{name}={t!r} must be a number between 0 and {MAX_SPREAD:g}")
     return float(t)
+
+
+def _temperature(t: float) -> float:
+    return check_spread(t, "temperature")
 
 
 def _t_values(t: Any) -> tuple[np.ndarray, bool]:
@@ -199,8 +210,7 @@ def variations(
     if logvar.shape != mu.shape:
         raise ParameterError(f"logvar has shape {logvar.shape}, mu has {mu.shape}")
     n = check_count(n, "n")
-    if not np.isfinite(amount) or amount < 0:
-        raise ParameterError(f"amount={amount!r} must be a finite number >= 0")
+    amount = check_spread(amount, "amount")
     if amount == 0:
         return np.repeat(mu[None], n, axis=0)
     eps = _rng(rng).standard_normal((n, mu.size))

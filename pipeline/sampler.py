@@ -124,8 +124,8 @@ def sample_mixture(mix: Mixture, n: int, *, temperature: float = 1.0,
 
     ``temperature`` T scales the spread around each component (T = 0 gives its means).
     """
-    if not np.isfinite(temperature) or temperature < 0:
-        raise ParameterError(f"temperature={temperature!r} must be a finite number >= 0")
+    if not np.isfinite(temperature) or not 0 <= temperature <= 100:  # latent.MAX_SPREAD
+        raise ParameterError(f"temperature={temperature!r} must be a number between 0 and 100")
     rng = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
     comp = rng.choice(mix.n_components, size=int(n), p=mix.weights)
     eps = rng.standard_normal((int(n), mix.dim))
