@@ -12,7 +12,7 @@ import sys
 from pathlib import Path
 
 import pytest
-from badfiles import hit, wav_bytes
+from badfiles import hit, tree_digest, wav_bytes
 from typer.testing import CliRunner
 
 from pipeline.cli import app
@@ -64,6 +64,25 @@ def w(tmp_path_factory) -> dict[str, Path]:
     y = hit(16000)
     y[10] = float("nan")
     paths["nan"].write_bytes(wav_bytes(y, 16000, subtype="FLOAT"))
+    # round two: non-finite and unbounded preset values, odd jobs files
+    for name, line in {"p_nan": "[audio]\npreroll_ms = nan", "p_inf": "[render]\nfade_in_ms = inf",
+                       "p_nfft": "[audio]\nn_fft = 1048576\nduration = 30.0",
+                       "p_huge": "[train]\nepochs = 9223372036854775807",
+                       "p_table": "audio = 3", "p_seed": "[train]\nseed = -1"}.items():
+        paths[name] = root / f"{name}.toml"
+        paths[name].write_text(line + "\n")
+    for name, text in {"j_nostart.csv": "start,end\n,hat_01\n", "j_short.csv": "end,start\nhat_01\n",
+                       "j_frac.csv": "start,end,steps\nkick_00,hat_01,2.7\n",
+                       "j_frac.toml": '[[job]]\nsounds = ["kick_00", "hat_01"]\nsteps = 2.7\n',
+                       "j_many.toml": '[[job]]\nsounds = ["kick_00", "hat_01"]\nsteps = 10**9\n'
+                       .replace("10**9", "1000000000"),
+                       "j_total.toml": '[[job]]\nsounds = ["kick_00", "hat_01"]\nsteps = 60000\n' * 2,
+                       "j_notlist.toml": "job = 3\n",
+                       "j_label.toml": '[[job]]\nsounds = ["kick_00", "hat_01"]\nlabel = [1]\n'}.items():
+        key = name.replace(".", "_")
+        paths[key] = root / name
+        paths[key].write_text(text)
+    paths["src_digest"] = tree_digest(src)
     return paths
 
 
@@ -170,11 +189,54 @@ CASES = [
     (["demo", "--epochs", "0"], 2, []),
     # the app itself
     (["nosuchcommand"], 2, []),
+    # round two (issue 13): seeds, counts, spreads, non-finite and unbounded settings, jobs
+    *[([cmd, *pre, "--out", "{out}/s", "--seed", "-1"], 2, ["--seed"]) for cmd, pre in
+      (("generate", ["{model}"]), ("vary", ["{model}", "kick_00"]),
+       ("interpolate", ["{model}", "kick_00", "hat_01"]), ("inspect", ["{model}"]))],
+    (["train", "{bank}", "--model", "{out}/s.pt", "--seed", "-1"], 2, ["--seed"]),
+    (["train", "{bank}", "--model", "{out}/s.pt", "--seed", str(2**64)], 2, ["--seed"]),
+    (["train", "{bank}", "--model", "{out}/s.pt", "--preset", "{p_seed}"], 1,
+     ["p_seed.toml", "train.seed", "-1 must be between 0 and 4294967295"]),
+    (["generate", "{model}", "--out", "{out}/g", "--temperature", "1e300"], 2, ["--temperature"]),
+    (["generate", "{model}", "--out", "{out}/g", "--temperature", "nan"], 2, ["--temperature"]),
+    (["vary", "{model}", "kick_00", "--out", "{out}/v", "--amount", "1e300"], 2, ["--amount"]),
+    (["generate", "{model}", "--out", "{out}/g", "-n", "1000000000"], 2, ["-n"]),
+    (["vary", "{model}", "kick_00", "--out", "{out}/v", "-n", "1000000000"], 2, ["-n"]),
+    (["interpolate", "{model}", "kick_00", "hat_01", "--out", "{out}/i", "--steps",
+      "1000000000"], 2, ["--steps"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--preset", "{p_nan}"], 1,
+     ["p_nan.toml", "audio.preroll_ms", "nan must be a finite number"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--duration", "nan"], 2, ["--duration", "finite"]),
+    (["train", "{bank}", "--model", "{out}/f.pt", "--preset", "{p_inf}"], 1,
+     ["p_inf.toml", "render.fade_in_ms", "inf must be a finite number"]),
+    (["train", "{bank}", "--model", "{out}/f.pt", "--beta", "nan"], 2, ["--beta", "finite"]),
+    (["ingest", "{src}", "--bank", "{out}/b", "--preset", "{p_nfft}"], 1,
+     ["p_nfft.toml", "audio.n_fft", "1048576 must be between 64 and 65536"]),
+    (["train", "{bank}", "--model", "{out}/f.pt", "--preset", "{p_huge}"], 1,
+     ["p_huge.toml", "train.epochs", "must be between 1 and 1000000"]),
+    (["train", "{bank}", "--model", "{out}/f.pt", "--preset", "{p_table}"], 1,
+     ["p_table.toml", "[audio] must be a table"]),
+    (["interpolate", "{model}", "--jobs-file", "{j_nostart_csv}", "--out", "{out}/i"], 1,
+     ["j_nostart.csv", "line 2", "'start'"]),
+    (["interpolate", "{model}", "--jobs-file", "{j_short_csv}", "--out", "{out}/i"], 1,
+     ["j_short.csv", "line 2", "'start'"]),
+    (["interpolate", "{model}", "--jobs-file", "{j_frac_csv}", "--out", "{out}/i"], 1,
+     ["j_frac.csv", "line 2", "'2.7' is not a whole number"]),
+    (["interpolate", "{model}", "--jobs-file", "{j_frac_toml}", "--out", "{out}/i"], 1,
+     ["j_frac.toml", "job 1", "2.7 is not a whole number"]),
+    (["interpolate", "{model}", "--jobs-file", "{j_many_toml}", "--out", "{out}/i"], 1,
+     ["j_many.toml", "job 1", "must be between 2 and 100000"]),
+    (["interpolate", "{model}", "--jobs-file", "{j_total_toml}", "--out", "{out}/i"], 1,
+     ["j_total.toml", "120000 sounds", "at most 100000"]),
+    (["interpolate", "{model}", "--jobs-file", "{j_notlist_toml}", "--out", "{out}/i"], 1,
+     ["j_notlist.toml", "[[job]] tables"]),
+    (["interpolate", "{model}", "--jobs-file", "{j_label_toml}", "--out", "{out}/i"], 1,
+     ["j_label.toml", "label [1] must be text"]),
 ]
 
 
 def _argv(args: list[str], w: dict[str, Path]) -> list[str]:
-    return [a.format(**{k: str(v) for k, v in w.items()}) for a in args]
+    return [a.format(**{k: str(v) for k, v in w.items()}) if "{" in a else a for a in args]
 
 
 @pytest.mark.parametrize("args, code, fragments", CASES, ids=[" ".join(c[0])[:60] for c in CASES])
@@ -210,6 +272,7 @@ def test_nothing_was_written_by_the_failures(w):
     assert sorted(p.name for p in w["existing"].iterdir()) == [mine.name]
     assert sorted(p.name for p in w["foreign"].iterdir()) == ["index.json"]
     assert not (w["src"] / "bank").exists() and not (w["src"] / "r").exists()
+    assert tree_digest(w["src"]) == w["src_digest"]  # the library is byte for byte as it was
 
 
 def test_debug_shows_the_traceback(tmp_path):
