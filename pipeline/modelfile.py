@@ -23,6 +23,9 @@ lists and dicts. Keys:
     ``{"path", "n_clips", "names_sha256"}`` of the bank it was trained on.
 ``state_dict``
     the network weights.
+``checksum``
+    SHA-256 of the weights and codes (:func:`pipeline.modelcheck.weights_checksum`), checked
+    on load with the rest of the structure (:func:`pipeline.modelcheck.check_payload`).
 ``sampler``
     ``{"library": mixture, "categories": {name: mixture}}``, each mixture
     ``{"weights" (K,), "means" (K, D), "covs" (K, D, D)}`` float64: the Gaussian mixtures
@@ -48,6 +51,7 @@ from pipeline import __version__, files
 from pipeline.config import AudioSpec, Settings, settings_from_dict
 from pipeline.errors import ModelFileError, ParameterError, ShotsmithError
 from pipeline.model import ShotVAE, build_model
+from pipeline.modelcheck import check_payload, weights_checksum
 from pipeline.sampler import Mixture, check_mixture, fit_samplers
 
 FORMAT_VERSION = 2  # 2: spectra analysed after AudioSpec.analysis_pad of silence
@@ -161,7 +165,7 @@ def model_payload(
     ``samplers`` (the mixtures fitted to ``mu``) is written when training ends; a file
     saved mid-training has none, and :meth:`ModelFile.samplers` fits them on load.
     """
-    return {
+    payload = {
         "format": FORMAT_VERSION,
         "tool": TOOL,
         "kind": "model",
@@ -179,6 +183,8 @@ def model_payload(
         "state_dict": {k: v.detach().cpu().clone() for k, v in state_dict.items()},
         "sampler": None if samplers is None else _samplers_payload(samplers),
     }
+    payload["checksum"] = weights_checksum(payload["state_dict"], payload["mu"], payload["logvar"])
+    return payload
 
 
 Samplers = tuple[Mixture, dict[str, Mixture]]  # the library's mixture, one per category
@@ -339,6 +345,7 @@ def load_model_file(path: str | Path) -> ModelFile:
         raise ModelFileError(f"{path}: {len(cats)} clip categories for {len(names)} clips")
     _check_weight_shapes(path, settings, p["state_dict"])
     _check_weights(path, p["state_dict"], settings)
+    check_payload(path, p, d)
     model = build_model(settings.audio, settings.model)
     try:
         model.load_state_dict(p["state_dict"], strict=True)

@@ -175,6 +175,35 @@ def _variants(tmp_path: Path) -> dict[str, tuple[Path, str]]:
         "weights do not fit")
     put("weight extra", d | {"state_dict": sd | {"extra.weight": torch.zeros(2)}},
         "weights do not fit")
+    # round two (issue 13): every field's type, non-finite values, bit rot
+    for key, value, why in [
+        ("history", "lots", "history is not a list"),
+        ("history", [{"epoch": 1, "val_loss": float("nan")}], "history[0].val_loss is nan"),
+        ("history", [[1, 2]], "history[0] is list, not a mapping"),
+        ("best", [1.0], "best is list, not a mapping"),
+        ("best", {"epoch": 1, "val_loss": float("inf")}, "best.val_loss is inf"),
+        ("bank", "nowhere", "bank is str, not a mapping"),
+        ("bank", {"path": 3, "n_clips": 6, "names_sha256": ""}, "bank.path is 3"),
+        ("categories", "kick", "categories is str, not a list"),
+        ("categories", [3], "categories holds 3, not a name"),
+        ("clip_names", [f"c{i}" for i in range(5)] + [7], "clip_names holds 7"),
+        ("clip_names", ["same"] * 6, "clip_names repeats a name"),
+        ("clip_categories", ["snare"] * 6, "names a category the model does not list"),
+        ("logvar", d["logvar"] + 1e6, "logvar reaches 1e+06"),
+        ("mu", torch.where(torch.arange(d["mu"].numel()).reshape(d["mu"].shape) == 5,
+                           torch.tensor(float("nan")), d["mu"]), "mu holds non-finite"),
+        ("split", {"train": torch.arange(5), "val": torch.tensor([99])}, "split.val"),
+        ("split", {"train": torch.arange(5)}, "split needs train and val"),
+    ]:
+        put(f"{key} {why}", d | {key: value}, why)
+    sd_nan = dict(d["state_dict"])
+    sd_nan[first] = sd_nan[first].clone()
+    sd_nan[first].view(-1)[0] = float("nan")
+    put("weight nan", d | {"state_dict": sd_nan}, f"weight {first} holds NaN")
+    sd_rot = dict(d["state_dict"])
+    sd_rot[first] = sd_rot[first].clone()
+    sd_rot[first].view(-1)[0] += 0.5  # finite bit rot: only the checksum sees it
+    put("weight changed", d | {"state_dict": sd_rot}, "checksum mismatch")
     bad = dict(d["settings"])
     bad["model"] = dict(bad["model"], latent_dim=-1)
     put("bad settings", d | {"settings": bad}, "bad settings")
@@ -230,13 +259,21 @@ _HOSTILE_SIZE = textwrap.dedent(
 )
 
 
-def test_settings_that_claim_a_huge_network_are_refused_before_allocating(tmp_path):
-    """A small file whose settings describe a network of tens of GB (n_fft 2^20, width 4096)
-    must fail on the shapes, not by trying to allocate it (run under a 3 GB address limit)."""
+@pytest.mark.parametrize(("audio", "model", "why"), [
+    # within every setting's bounds: a network of about 3 GB (width 4096, depth 8)
+    ({"sample_rate": 192000, "duration": 2.0, "n_fft": 8192, "hop_length": 4096},
+     {"width": 4096, "depth": 8}, "weights do not fit"),
+    # n_fft 2^20 is beyond its bound: refused with the settings, before any shape
+    ({"sample_rate": 192000, "duration": 30.0, "n_fft": 2**20, "hop_length": 2**19},
+     {"width": 4096}, "audio.n_fft: 1048576 must be between 64 and 65536"),
+])
+def test_settings_that_claim_a_huge_network_are_refused_before_allocating(tmp_path, audio,
+                                                                          model, why):
+    """A small file whose settings describe a network of gigabytes must fail on the settings
+    or the shapes, not by trying to allocate it (run under a 3 GB address limit)."""
     d = model_dict(TINY)
-    d["settings"]["audio"].update(sample_rate=192000, duration=30.0, n_fft=2**20,
-                                  hop_length=2**19)
-    d["settings"]["model"].update(width=4096)
+    d["settings"]["audio"].update(audio)
+    d["settings"]["model"].update(model)
     path = _save(tmp_path / "huge.pt", d)
     assert path.stat().st_size < 50 * 2**20
     limit = 3 * 2**30
@@ -246,7 +283,7 @@ def test_settings_that_claim_a_huge_network_are_refused_before_allocating(tmp_pa
                          capture_output=True, text=True, timeout=120)
     assert run.returncode == 0, run.stderr[-1500:]
     assert run.stdout.startswith(f"ModelFileError: {path}: ")
-    assert "weights do not fit" in run.stdout and len(run.stdout.strip().splitlines()) == 1
+    assert why in run.stdout and len(run.stdout.strip().splitlines()) == 1
 
 
 def test_model_file_json_fields_are_plain_data(tmp_path):
