@@ -10,6 +10,7 @@
 
 from __future__ import annotations
 
+import os
 import posixpath
 import sys
 from collections import Counter, deque
@@ -100,6 +101,48 @@ def decode_one(task: tuple[str, AudioSpec, str]) -> Decoded:
     return clip_to_unit(clip, spec).astype(dtype, copy=False), meta
 
 
+def die_with_parent(parent: int) -> None:
+    """Worker initializer: end this process when the one that started it ends.
+
+    A killed ingest (SIGKILL runs no clean-up) must not leave its decoders running for
+    ever, holding the caller's stdout. On Linux the kernel sends SIGKILL when the parent
+    exits (``prctl(PR_SET_PDEATHSIG)``); everywhere, a daemon thread exits once the
+    process is handed to another parent (forkserver workers: when the forkserver, which
+    ends with its starter, goes).
+    """
+    import signal
+    import threading
+    import time
+
+    if sys.platform.startswith("linux"):
+        import ctypes
+
+        try:
+            ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL))  # PR_SET_PDEATHSIG
+        except (OSError, AttributeError):  # pragma: no cover - no prctl in this libc
+            pass
+    start = os.getppid()
+    if start != parent and not _is_alive(parent):
+        os._exit(1)  # the parent ended before the signal was armed
+
+    def watch() -> None:
+        while os.getppid() == start:
+            time.sleep(0.5)
+        os._exit(1)
+
+    threading.Thread(target=watch, name="die-with-parent", daemon=True).start()
+
+
+def _is_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # pragma: no cover - someone else's process took the pid
+        return True
+    return True
+
+
 def _pool(jobs: int) -> ProcessPoolExecutor:
     import multiprocessing as mp
 
@@ -114,7 +157,8 @@ def _pool(jobs: int) -> ProcessPoolExecutor:
         ctx.set_forkserver_preload(["pipeline.decode"])
     else:
         ctx = None  # spawn, the platform default
-    return ProcessPoolExecutor(max_workers=jobs, mp_context=ctx)
+    return ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=die_with_parent,
+                               initargs=(os.getpid(),))
 
 
 def check_jobs(jobs: int | None) -> int:

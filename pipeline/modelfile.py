@@ -346,6 +346,9 @@ def load_model_file(path: str | Path) -> ModelFile:
     _check_weight_shapes(path, settings, p["state_dict"])
     _check_weights(path, p["state_dict"], settings)
     check_payload(path, p, d)
+    if len(names) < 2:  # train refuses such banks; a file from elsewhere still says why
+        raise ModelFileError(f"{path}: the model holds {len(names)} clip; generating, varying "
+                             "and inspecting need at least 2 (train on two or more sounds)")
     model = build_model(settings.audio, settings.model)
     try:
         model.load_state_dict(p["state_dict"], strict=True)

@@ -387,6 +387,9 @@ def finish(files: RunFiles, st: TrainState, kept: Kept) -> None:
     files.remove_checkpoint()
 
 
+MIN_CLIPS = 2  # generate, vary and inspect compare codes with each other: one is not enough
+
+
 def train_model(
     bank_dir: str | Path,
     model_path: str | Path,
@@ -440,8 +443,10 @@ def train_model(
     started = time.perf_counter()
     bank_dir, model_path = Path(bank_dir), Path(model_path)
     bank = open_bank(bank_dir)
-    if len(bank) == 0:
-        raise TrainingError(f"{bank_dir}: the bank holds no clips")
+    if len(bank) < MIN_CLIPS:
+        raise TrainingError(f"{bank_dir}: the bank holds {len(bank)} clip"
+                            f"{'' if len(bank) == 1 else 's'}; training needs at least "
+                            f"{MIN_CLIPS} (ingest a folder of two or more sounds)")
     if settings is None:
         settings, _ = choose_settings(None, stored_settings(bank_dir))
     settings = settings.replace(audio=bank.audio)

@@ -71,17 +71,24 @@ def w(tmp_path_factory) -> dict[str, Path]:
                        "p_table": "audio = 3", "p_seed": "[train]\nseed = -1"}.items():
         paths[name] = root / f"{name}.toml"
         paths[name].write_text(line + "\n")
-    for name, text in {"j_nostart.csv": "start,end\n,hat_01\n", "j_short.csv": "end,start\nhat_01\n",
+    job = '[[job]]\nsounds = ["kick_00", "hat_01"]\n'
+    for name, text in {"j_nostart.csv": "start,end\n,hat_01\n",
+                       "j_short.csv": "end,start\nhat_01\n",
                        "j_frac.csv": "start,end,steps\nkick_00,hat_01,2.7\n",
-                       "j_frac.toml": '[[job]]\nsounds = ["kick_00", "hat_01"]\nsteps = 2.7\n',
-                       "j_many.toml": '[[job]]\nsounds = ["kick_00", "hat_01"]\nsteps = 10**9\n'
-                       .replace("10**9", "1000000000"),
-                       "j_total.toml": '[[job]]\nsounds = ["kick_00", "hat_01"]\nsteps = 60000\n' * 2,
+                       "j_frac.toml": job + "steps = 2.7\n",
+                       "j_many.toml": job + "steps = 1000000000\n",
+                       "j_total.toml": (job + "steps = 60000\n") * 2,
                        "j_notlist.toml": "job = 3\n",
-                       "j_label.toml": '[[job]]\nsounds = ["kick_00", "hat_01"]\nlabel = [1]\n'}.items():
+                       "j_label.toml": job + "label = [1]\n"}.items():
         key = name.replace(".", "_")
         paths[key] = root / name
         paths[key].write_text(text)
+    one = root / "one sound"  # a library of one file ingests, and then?
+    one.mkdir()
+    (one / "kick.wav").write_bytes(wav_bytes(hit(16000), 16000))
+    ingest_folder(one, root / "bank1", TINY, jobs=1)
+    paths["bank1"] = root / "bank1"
+    paths["model1"] = write_model_file(root / "m1.pt", TINY, n_clips=1)
     paths["src_digest"] = tree_digest(src)
     return paths
 
@@ -232,6 +239,11 @@ CASES = [
      ["j_notlist.toml", "[[job]] tables"]),
     (["interpolate", "{model}", "--jobs-file", "{j_label_toml}", "--out", "{out}/i"], 1,
      ["j_label.toml", "label [1] must be text"]),
+    (["train", "{bank1}", "--model", "{out}/one.pt"], 1,
+     ["bank1", "holds 1 clip", "needs at least 2"]),
+    (["generate", "{model1}", "--out", "{out}/g1"], 1, ["m1.pt", "holds 1 clip", "at least 2"]),
+    (["vary", "{model1}", "kick_00", "--out", "{out}/v1"], 1, ["m1.pt", "holds 1 clip"]),
+    (["inspect", "{model1}", "--out", "{out}/x1"], 1, ["m1.pt", "holds 1 clip"]),
 ]
 
 

@@ -543,3 +543,49 @@ def test_full_disk_while_saving_a_model_keeps_the_last_one(bank, tmp_path, monke
     mf = load_model_file(model)
     assert mf.best["epoch"] == 1
     assert sorted(p.name for p in tmp_path.iterdir()) == ["model.pt", "model.pt.ckpt"]
+
+
+# --- round two (issue 13): what a killed ingest leaves running or behind ---------------------
+
+
+def _children(pid: int) -> list[int]:
+    try:
+        return [int(x) for x in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
+    except OSError:
+        return []
+
+
+def _running(pid: int) -> bool:
+    try:  # a zombie (state Z) has ended; its parent just has not collected it
+        return Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0] != "Z"
+    except OSError:
+        return False
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not Path("/proc/self/task").is_dir(), reason="reads /proc (Linux)")
+def test_sigkill_during_parallel_ingest_takes_the_decoders_along(own_tmp):
+    """SIGKILL runs no clean-up: the decoder workers must still end with their parent (they
+    held the caller's stdout for ever), and the next ingest removes the staging file left."""
+    src, bank = own_tmp / "src", own_tmp / "bank"
+    src.mkdir()
+    rng = np.random.default_rng(0)
+    for i in range(80):  # 3 s noise at 44.1 kHz: resampling keeps the workers busy
+        sf.write(src / f"s{i:02d}.wav", 0.1 * rng.standard_normal(3 * 44100), 44100)
+    digest = tree_digest(src)
+    proc = _cli("ingest", str(src), "--bank", str(bank), "--jobs", "2", "--preset", "tiny")
+    assert _wait_for(lambda: len(_children(proc.pid)) >= 2, proc), proc.communicate()
+    workers = _children(proc.pid)
+    time.sleep(0.3)
+    proc.kill()
+    proc.communicate(timeout=30)
+    deadline = time.monotonic() + 10
+    while any(_running(w) for w in workers) and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert not [w for w in workers if _running(w)], "decoder workers outlived their parent"
+    left = [p.name for p in bank.iterdir() if p.name.startswith(".")] if bank.exists() else []
+    again = _cli("ingest", str(src), "--bank", str(bank), "--jobs", "2", "--preset", "tiny")
+    out, err = again.communicate(timeout=300)
+    assert again.returncode == 0, err
+    assert [p.name for p in bank.iterdir() if p.name.startswith(".")] == [], left
+    assert tree_digest(src) == digest
