@@ -155,6 +155,11 @@ def _read_needed(f: sf.SoundFile, spec: AudioSpec) -> tuple[np.ndarray, bool]:
     return data, False
 
 
+# File sample rates read (common practice: telephone-band 8 kHz recordings and 768 kHz
+# converters are the extremes in use). A header claiming 1 Hz made a 0.25 s hit hours long.
+MIN_FILE_RATE, MAX_FILE_RATE = 4000, 768000
+
+
 def decode_file(path: str | Path, spec: AudioSpec) -> tuple[np.ndarray, dict[str, Any]]:
     """Decode one file to its fitted clip and metadata.
 
@@ -182,6 +187,10 @@ def decode_file(path: str | Path, spec: AudioSpec) -> tuple[np.ndarray, dict[str
         raise AudioError(_libsndfile_reason(exc)) from None
     with f:
         sr, channels = int(f.samplerate), int(f.channels)
+        if not MIN_FILE_RATE <= sr <= MAX_FILE_RATE:  # a damaged header, not a recording
+            side = "below" if sr < MIN_FILE_RATE else "above"
+            raise AudioError(f"sample rate {sr} Hz is {side} the {MIN_FILE_RATE}-{MAX_FILE_RATE}"
+                             " Hz this tool reads (a damaged header?)")
         try:
             data, to_end = _read_needed(f, spec)
         except (sf.SoundFileError, RuntimeError) as exc:

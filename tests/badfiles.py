@@ -140,6 +140,11 @@ def build_corpus(root: Path, *, long_hours: float = 1.0) -> list[Case]:
     zero_len = bytearray(good)
     struct.pack_into("<I", zero_len, 40, 0)
     add("lies/data size zero.wav", bytes(zero_len), EITHER, "data size 0 but samples follow")
+    for rate in (1, 7, 3999, 10_000_000):  # issue 13: 1 Hz made a 0.25 s hit hours long
+        lying = bytearray(good)
+        struct.pack_into("<II", lying, 24, rate, rate * 2)  # fmt: sample rate, byte rate
+        add(f"lies/claims {rate} Hz.wav", bytes(lying), f"sample rate {rate} Hz is",
+            f"header sample rate {rate} Hz")
 
     # --- sample values ------------------------------------------------------------------
     for name, bad, subtype in (("nan", np.nan, "FLOAT"), ("inf", np.inf, "FLOAT"),
