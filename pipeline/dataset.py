@@ -50,11 +50,13 @@ class SpectraDataset(Dataset):
         return len(self.rows)
 
     def __getitem__(self, i: int) -> torch.Tensor:
-        return torch.from_numpy(np.asarray(self.spectra[self.rows[i]], dtype=np.float32))
+        # np.array copies: a float32 bank's row is a read-only view of the memory map, and
+        # torch warns about tensors over read-only memory
+        return torch.from_numpy(np.array(self.spectra[self.rows[i]], dtype=np.float32))
 
     def __getitems__(self, items: list[int]) -> torch.Tensor:
         # one fancy-indexed read per batch instead of one per clip
-        return torch.from_numpy(np.asarray(self.spectra[self.rows[items]], dtype=np.float32))
+        return torch.from_numpy(np.array(self.spectra[self.rows[items]], dtype=np.float32))
 
 
 def mean_spectrogram(spectra: np.ndarray, rows: np.ndarray, *, chunk: int = 256) -> torch.Tensor:

@@ -200,7 +200,6 @@ def _paired_ratio(y_ref: np.ndarray, y_dec: np.ndarray, sr: int) -> float:
 def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[int],
                             rng: np.random.Generator, seed: int):
     """The ``reconstruction`` section and the figure's originals / reconstructions."""
-    from pipeline.modelfile import names_digest
     from pipeline.spectra import unit_to_magnitude
 
     audio = mf.audio
@@ -219,8 +218,9 @@ def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[i
         raise BankError(f"{bank.path}: none of the model's held-out clips are in this bank "
                         "(is it the bank the model was trained on?)")
     out["missing_from_bank"] = int(len(idx) - len(present))
-    digest = (getattr(mf, "bank", None) or {}).get("names_sha256")
-    out["same_bank"] = None if digest is None else digest == names_digest(bank.names)
+    # by content: another bank whose clips share the names is not the same bank
+    fingerprint = (getattr(mf, "bank", None) or {}).get("fingerprint")
+    out["same_bank"] = None if fingerprint is None else fingerprint == bank.fingerprint()
     mu = np.asarray(mf.mu, np.float32)
     take = np.sort(rng.choice(len(present), size=min(PHASE_MAX_CLIPS, len(present)),
                               replace=False))

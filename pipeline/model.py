@@ -234,7 +234,7 @@ def encode_all(
     model.eval()
     mus, lvs = [], []
     for i in range(0, len(spectra), batch_size):
-        x = torch.from_numpy(np.asarray(spectra[i : i + batch_size], dtype=np.float32)).to(device)
+        x = torch.from_numpy(np.array(spectra[i : i + batch_size], dtype=np.float32)).to(device)
         mu, lv = model.encode(x)
         mus.append(mu.cpu().numpy())
         lvs.append(lv.cpu().numpy())

@@ -255,7 +255,7 @@ class ModelFile:
 
     def decode(self, z: np.ndarray, *, batch_size: int = 64) -> np.ndarray:
         """Codes ``(B, latent_dim)`` to float32 spectrograms ``(B, bins, frames)`` in [0, 1]."""
-        z = np.asarray(z, dtype=np.float32)
+        z = np.array(z, dtype=np.float32)  # a copy: torch warns on read-only memory
         if z.ndim != 2 or z.shape[1] != self.latent_dim:
             raise ParameterError(f"z must have shape (B, {self.latent_dim}), got {z.shape}")
         if not np.isfinite(z).all():
@@ -269,7 +269,7 @@ class ModelFile:
 
     def encode(self, U: np.ndarray, *, batch_size: int = 64) -> tuple[np.ndarray, np.ndarray]:
         """Spectrograms ``(B, bins, frames)`` in [0, 1] to ``(mu, logvar)``, each ``(B, D)``."""
-        U = np.asarray(U, dtype=np.float32)
+        U = np.array(U, dtype=np.float32)  # a copy: torch warns on read-only memory
         shape = (self.audio.n_bins, self.audio.n_frames)
         if U.ndim != 3 or U.shape[1:] != shape:
             raise ParameterError(f"U must have shape (B, {shape[0]}, {shape[1]}), got {U.shape}")

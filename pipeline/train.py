@@ -452,7 +452,7 @@ def train_model(
     settings = settings.replace(audio=bank.audio)
     files = RunFiles(model_path, settings, bank, {
         "path": str(bank_dir.resolve()), "n_clips": len(bank),
-        "names_sha256": names_digest(bank.names)})
+        "names_sha256": names_digest(bank.names), "fingerprint": bank.fingerprint()})
     _check_outputs(files, resume=resume, overwrite=overwrite)
     dev = pick_device(device)
     for path in (model_path, files.checkpoint):  # left by a run that was killed while saving

@@ -314,3 +314,24 @@ def test_a_foreign_manifest_in_out_is_not_replaced_without_overwrite(w, tmp_path
     assert (out / "manifest.json").read_text() == '{"my": "own notes"}'
     assert runner.invoke(app, [*args, "--overwrite"]).exit_code == 0
     assert '"tool": "shotsmith"' in (out / "manifest.json").read_text()
+
+
+@pytest.mark.slow
+def test_a_float32_bank_trains_without_a_warning(tmp_path):
+    """Issue 13: float32 spectra (a documented preset option) are read-only rows of a memory
+    map; torch warned about them once per process. Any warning fails the run here."""
+    from modelfiles import small_preset
+
+    from pipeline.ingest import ingest_folder
+
+    src = tmp_path / "kit"
+    src.mkdir()
+    for i in range(4):
+        (src / f"hit_{i}.wav").write_bytes(wav_bytes(hit(16000, f0=100 + 300 * i, seed=i), 16000))
+    preset = small_preset(tmp_path, spectra_dtype="float32", epochs=1)
+    ingest_folder(src, tmp_path / "bank", load_settings(preset), jobs=1)
+    run = subprocess.run([sys.executable, "-W", "error", "-m", "pipeline", "train",
+                          str(tmp_path / "bank"), "--model", str(tmp_path / "m.pt")],
+                         capture_output=True, text=True, timeout=300)
+    assert run.returncode == 0, run.stderr[-2000:]
+    assert "Warning" not in run.stderr, run.stderr

@@ -322,3 +322,34 @@ def test_paths_that_are_not_utf8_reach_every_json_file(tmp_path, untrained_model
     assert Path(manifest["request"]["sound"]).is_file()
     assert v["files"] == ["vary-caf-00.wav"]
     assert tree_digest(src) == before
+
+
+def test_inspect_tells_another_bank_with_the_same_names_by_its_sounds(tmp_path):
+    """Issue 13: a different bank whose clips share the names is not the same bank."""
+    import torch
+    from badfiles import hit, wav_bytes
+    from modelfiles import model_dict
+
+    from pipeline.inspection import inspect_model
+    from pipeline.modelfile import names_digest, save_atomic
+
+    banks = {}
+    for which, f0 in (("mine", 110.0), ("other", 2500.0)):
+        src = tmp_path / f"{which} kit"
+        src.mkdir()
+        for i in range(6):  # the names model_dict gives its clips
+            name = f"{'kick' if i % 2 == 0 else 'hat'}_{i:02d}.wav"
+            (src / name).write_bytes(wav_bytes(hit(16000, f0=f0 * (1 + i / 8), seed=i), 16000))
+        ingest_folder(src, tmp_path / which, TINY, jobs=1)
+        banks[which] = open_bank(tmp_path / which)
+    assert banks["mine"].names == banks["other"].names
+    d = model_dict(TINY)
+    d["bank"] = {"path": str(tmp_path / "mine"), "n_clips": 6,
+                 "names_sha256": names_digest(banks["mine"].names),
+                 "fingerprint": banks["mine"].fingerprint()}
+    save_atomic(d, tmp_path / "m.pt")
+    assert isinstance(torch.load(tmp_path / "m.pt", weights_only=True)["bank"], dict)
+    same = {which: inspect_model(tmp_path / "m.pt", tmp_path / f"x {which}",
+                                 bank=tmp_path / which)["reconstruction"]["same_bank"]
+            for which in banks}
+    assert same == {"mine": True, "other": False}
