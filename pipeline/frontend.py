@@ -160,6 +160,21 @@ def _read_needed(f: sf.SoundFile, spec: AudioSpec) -> tuple[np.ndarray, bool]:
 MIN_FILE_RATE, MAX_FILE_RATE = 4000, 768000
 
 
+def _open_sound(path: str | Path) -> sf.SoundFile:
+    """libsndfile keeps a path in a 1024-byte buffer ("System error." beyond it): a longer
+    path is opened here and handed over as a file descriptor (short ones keep the path,
+    from which libsndfile also guesses formats by extension)."""
+    name = sound_path(path)
+    if len(os.fsencode(os.path.abspath(path))) < 1000:
+        return sf.SoundFile(name)
+    fd = os.open(name, os.O_RDONLY)
+    try:
+        return sf.SoundFile(fd, closefd=True)
+    except BaseException:
+        os.close(fd)
+        raise
+
+
 def decode_file(path: str | Path, spec: AudioSpec) -> tuple[np.ndarray, dict[str, Any]]:
     """Decode one file to its fitted clip and metadata.
 
@@ -182,7 +197,9 @@ def decode_file(path: str | Path, spec: AudioSpec) -> tuple[np.ndarray, dict[str
     if size == 0:
         raise AudioError("empty file (0 bytes)")
     try:
-        f = sf.SoundFile(sound_path(path))
+        f = _open_sound(path)
+    except OSError as exc:
+        raise AudioError(f"cannot be read: {files.reason(exc).lower()}") from None
     except (sf.SoundFileError, RuntimeError, TypeError, ValueError) as exc:
         raise AudioError(_libsndfile_reason(exc)) from None
     with f:

@@ -119,7 +119,12 @@ def scan_folder(source: str | Path) -> ScanResult:
             try:
                 est = os.stat(entry.path)  # follows symlinks
             except OSError as exc:
-                if entry.is_symlink() or is_audio_name(entry.name):
+                if exc.errno == errno.ENAMETOOLONG:  # a folder below it would vanish silently
+                    size = len(os.fsencode(entry.path))
+                    out.skipped.append({"path": shown + ("/" if entry.is_dir(
+                        follow_symlinks=False) else ""), "reason": f"path too long for this "
+                        f"system ({size} bytes); move it higher up or shorten the names"})
+                elif entry.is_symlink() or is_audio_name(entry.name):
                     reason = (
                         "symlink loop (the link points back to itself)"
                         if exc.errno == errno.ELOOP

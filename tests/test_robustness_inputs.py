@@ -353,3 +353,45 @@ def test_inspect_tells_another_bank_with_the_same_names_by_its_sounds(tmp_path):
                                  bank=tmp_path / which)["reconstruction"]["same_bank"]
             for which in banks}
     assert same == {"mine": True, "other": False}
+
+
+def _deep(root: Path, depth: int, wav: bytes) -> None:
+    """``depth`` nested folders of 200-byte names with a WAV at the bottom, made through
+    folder descriptors (past PATH_MAX no absolute path reaches them)."""
+    fd = os.open(root, os.O_RDONLY)
+    try:
+        for k in range(depth):
+            name = f"{k:02d}" + "d" * 198
+            os.mkdir(name, dir_fd=fd)
+            nxt = os.open(name, os.O_RDONLY, dir_fd=fd)
+            os.close(fd)
+            fd = nxt
+        out = os.open("deep hit.wav", os.O_WRONLY | os.O_CREAT, 0o644, dir_fd=fd)
+        os.write(out, wav)
+        os.close(out)
+    finally:
+        os.close(fd)
+
+
+@pytest.mark.skipif(sys.platform != "linux", reason="PATH_MAX 4096 and libsndfile's 1024")
+def test_long_paths_are_read_or_named_with_a_reason(tmp_path):
+    """Issue 13: a file at an absolute path of 1024 bytes or more read as "System error.";
+    folders past the system's path limit were dropped silently (counted as ignored)."""
+    from badfiles import hit, wav_bytes
+
+    src = tmp_path / "kit"
+    src.mkdir()
+    wav = wav_bytes(hit(16000), 16000)
+    (src / "near").mkdir()
+    _deep(src / "near", 6, wav)  # about 1.3 KB: over libsndfile's buffer, under PATH_MAX
+    (src / "far").mkdir()
+    _deep(src / "far", 24, wav)  # about 4.9 KB: past PATH_MAX
+    summary = ingest_folder(src, tmp_path / "bank", TINY, jobs=1)
+    report = json.loads((tmp_path / "bank" / REPORT_FILE).read_text("utf-8"))
+    assert summary.accepted == 1 and summary.ignored == 0, report
+    long = [s for s in report["skipped"] if "path too long" in s["reason"]]
+    assert len(long) == 1 and long[0]["path"].startswith("far/"), report["skipped"]
+    near = next(p for p in (src / "near").rglob("*.wav"))
+    assert len(os.fsencode(near)) >= 1024
+    assert load_clip(near, SPEC).shape == (SPEC.n_samples,)
+    assert near.read_bytes() == wav  # the library as it was (a tree digest cannot walk it)
