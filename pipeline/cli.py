@@ -64,6 +64,8 @@ def _friendly(func):
             if _state["debug"]:
                 raise
             typer.echo("interrupted", err=True)
+            if kwargs.get("as_json"):  # --json promises one object on stdout, even now
+                typer.echo(json.dumps({"stopped": "interrupted", "exit_code": 130}))
             raise typer.Exit(130) from None
         except OSError as exc:
             if _state["debug"]:

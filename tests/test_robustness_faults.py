@@ -589,3 +589,44 @@ def test_sigkill_during_parallel_ingest_takes_the_decoders_along(own_tmp):
     assert again.returncode == 0, err
     assert [p.name for p in bank.iterdir() if p.name.startswith(".")] == [], left
     assert tree_digest(src) == digest
+
+
+def test_ctrl_c_in_the_first_epoch_of_train_json_is_one_json_object(bank, tmp_path, monkeypatch):
+    """Issue 13: Ctrl-C before the first epoch ends (no best loss yet) exits 130 with one
+    valid JSON object on stdout (no NaN), and again when it comes before training starts."""
+    import pipeline.progress
+
+    bank_dir, _ = bank
+
+    def strict(text: str) -> dict:
+        return json.loads(text, parse_constant=lambda c: pytest.fail(f"{c} in the JSON"))
+
+    def ctrl_c_at_start(*a, **kw):  # the progress bar's first call is the 'start' event
+        from contextlib import contextmanager
+
+        @contextmanager
+        def bar_cm():
+            yield lambda *a, **kw: os.kill(os.getpid(), signal.SIGINT)
+        return bar_cm()
+
+    monkeypatch.setattr(pipeline.progress, "progress_bar", ctrl_c_at_start)
+    model = tmp_path / "m.pt"
+    result = runner.invoke(app, ["train", str(bank_dir), "--model", str(model), "--epochs", "3",
+                                 "--json"])
+    assert result.exit_code == 130, result.output
+    lines = result.stdout.strip().splitlines()
+    assert len(lines) == 1, result.stdout
+    s = strict(lines[0])
+    assert s["stopped"] == "interrupted" and s["model"] is None and not model.exists()
+    assert s["best_val_loss"] is None and s["resume_command"].endswith("--resume")
+
+    def interrupted_early(*a, **kw):
+        raise KeyboardInterrupt
+
+    import pipeline.train
+
+    monkeypatch.setattr(pipeline.train, "train_model", interrupted_early)
+    result = runner.invoke(app, ["train", str(bank_dir), "--model", str(tmp_path / "n.pt"),
+                                 "--json"])
+    assert result.exit_code == 130 and result.stderr.strip() == "interrupted"
+    assert strict(result.stdout) == {"stopped": "interrupted", "exit_code": 130}
