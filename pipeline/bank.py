@@ -200,7 +200,35 @@ def read_index(path: Path) -> dict[str, Any]:
     if version < BANK_FORMAT:
         raise BankError(f"{path}: bank format {version} was made by an older shotsmith "
                         f"(this one reads {BANK_FORMAT}); re-run 'shotsmith ingest'")
+    _check_index(path / INDEX_FILE, index)
     return index
+
+
+def _check_index(where: Path, index: dict[str, Any]) -> None:
+    """Every field the commands read, of the type they read it as (a damaged or hand-edited
+    index is refused here in one line, not as a TypeError deep in training)."""
+    def bad(what: str) -> BankError:
+        return BankError(f"{where}: damaged bank index ({what}; re-run ingest)")
+
+    if not isinstance(index.get("audio"), dict):
+        raise bad("audio is not a table of settings")
+    if not isinstance(index.get("settings", {}), dict):
+        raise bad("settings is not a table of settings")
+    clips = index["clips"]
+    if not isinstance(clips, list):
+        raise bad("clips is not a list")
+    seen: set[str] = set()
+    for i, c in enumerate(clips):
+        if not isinstance(c, dict):
+            raise bad(f"clip {i} is not a record")
+        name, cat = c.get("name"), c.get("category")
+        if not isinstance(name, str) or not name or name in seen:
+            raise bad(f"clip {i} has the name {name!r}" + (" twice" if name in seen else ""))
+        if cat is not None and (not isinstance(cat, str) or not cat):
+            raise bad(f"clip {name} has the category {cat!r}")
+        if not isinstance(c.get("path"), str):
+            raise bad(f"clip {name} has the path {c.get('path')!r}")
+        seen.add(name)
 
 
 def open_bank(path: Path) -> Bank:

@@ -109,7 +109,8 @@ def _previous(bank: Path, audio: dict[str, Any]):
         raise BankError(f"{index_path}: exists and is not a shotsmith bank; choose another "
                         "bank folder")
     if raw.get("audio") != audio:
-        changed = sorted(k for k in audio if (raw.get("audio") or {}).get(k) != audio[k])
+        stored = raw.get("audio") if isinstance(raw.get("audio"), dict) else {}
+        changed = sorted(k for k in audio if stored.get(k) != audio[k])
         return {}, {}, None, f"rebuilt: audio settings changed ({', '.join(changed)})"
     try:
         old = open_bank(bank)

@@ -335,3 +335,39 @@ def test_a_float32_bank_trains_without_a_warning(tmp_path):
                          capture_output=True, text=True, timeout=300)
     assert run.returncode == 0, run.stderr[-2000:]
     assert "Warning" not in run.stderr, run.stderr
+
+
+@pytest.mark.parametrize(("damage", "why"), [
+    (lambda d: d.update(clips=5), "clips is not a list"),
+    (lambda d: d["clips"].__setitem__(0, 3), "clip 0 is not a record"),
+    (lambda d: d["clips"][0].pop("name"), "clip 0 has the name None"),
+    (lambda d: d["clips"][0].__setitem__("name", 7), "clip 0 has the name 7"),
+    (lambda d: d["clips"][1].__setitem__("name", d["clips"][0]["name"]), "twice"),
+    (lambda d: d["clips"][0].__setitem__("category", 7), "has the category 7"),
+    (lambda d: d["clips"][0].__setitem__("path", None), "has the path None"),
+    (lambda d: d.update(audio="x"), "audio is not a table"),
+    (lambda d: d.update(settings=[1]), "settings is not a table"),
+], ids=["clips int", "clip int", "no name", "name int", "names twice", "category int",
+        "path none", "audio text", "settings list"])
+def test_a_damaged_bank_index_is_one_line_and_ingest_rebuilds_it(w, tmp_path, damage, why):
+    """Found beyond issue 13 (a sibling of its model-file item): a hand-edited or damaged
+    index.json gave TypeErrors and KeyErrors in train and inspect, and one in ingest."""
+    import json
+    import shutil
+
+    bank = tmp_path / "bank"
+    shutil.copytree(w["bank"], bank)
+    index = json.loads((bank / "index.json").read_text("utf-8"))
+    damage(index)
+    (bank / "index.json").write_text(json.dumps(index), "utf-8")
+    for args in (["train", str(bank), "--model", str(tmp_path / "m.pt")],
+                 ["inspect", str(w["model"]), "--out", str(tmp_path / "x"), "--bank", str(bank)]):
+        result = runner.invoke(app, args)
+        assert result.exit_code == 1 and "Traceback" not in result.output, result.output
+        line = result.stderr.strip()
+        assert line.startswith(f"error: {bank / 'index.json'}: damaged bank index (")
+        assert why in line and "\n" not in line, line
+    assert not (tmp_path / "m.pt").exists()
+    result = runner.invoke(app, ["ingest", str(w["src"]), "--bank", str(bank), "--preset", "tiny"])
+    assert result.exit_code == 0, result.output
+    assert tree_digest(w["src"]) == w["src_digest"]
