@@ -129,7 +129,7 @@ SeedOpt = Annotated[int | None, typer.Option("--seed", min=0, max=SEED_MAX,
                                              help="Random seed (repeatable output).")]
 JobsOpt = Annotated[
     int | None,
-    typer.Option("--jobs", min=1, help="Decoding processes (default: all cores)."),
+    typer.Option("--jobs", min=1, max=256, help="Decoding processes (default: all cores)."),
 ]
 
 # The setting each option overrides. The settings validate every value once, against their

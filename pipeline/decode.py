@@ -161,11 +161,16 @@ def _pool(jobs: int) -> ProcessPoolExecutor:
                                initargs=(os.getpid(),))
 
 
+MAX_JOBS = 256
+
+
 def check_jobs(jobs: int | None) -> int:
     """Decoder processes: ``None`` is every core this process may use; at least 1."""
     jobs = available_cores() if jobs is None else jobs
     if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
         raise ParameterError(f"jobs={jobs!r} must be at least 1")
+    if jobs > MAX_JOBS:  # one process per file of a large folder would swamp the machine
+        raise ParameterError(f"jobs={jobs} must be at most {MAX_JOBS}")
     return jobs
 
 

@@ -60,3 +60,10 @@ def test_decoded_in_order_whatever_the_jobs(tmp_path):
 def test_jobs_below_one_is_refused_at_once():
     with pytest.raises(ParameterError, match="jobs=0 must be at least 1"):
         decode_files([], SPEC, jobs=0)
+
+
+def test_jobs_beyond_the_cap_are_refused_at_once():
+    """A process per file of a 5,000-file folder would swamp the machine (issue 13's family
+    of unbounded counts)."""
+    with pytest.raises(ParameterError, match="jobs=100000 must be at most 256"):
+        decode_files(["a.wav"] * 5000, SPEC, jobs=100_000)

@@ -113,6 +113,8 @@ CASES = [
      ["--sample-rate", "100 must be between 4000 and 192000 Hz"]),
     (["ingest", "{src}", "--bank", "{out}/b", "--duration", "0"], 2, ["--duration"]),
     (["ingest", "{src}", "--bank", "{out}/b", "--jobs", "0"], 2, []),
+    (["ingest", "{src}", "--bank", "{out}/b", "--jobs", "100000"], 2, ["--jobs"]),
+    (["resynth", "{src}", "--out", "{out}/r", "--jobs", "100000"], 2, ["--jobs"]),
     (["ingest", "{src}"], 2, []),
     # resynth
     (["resynth", "{src}/missing", "--out", "{out}/r"], 1, ["missing", "not found"]),
