@@ -30,7 +30,7 @@ import numpy as np
 import torch
 
 from pipeline.config import Settings
-from pipeline.errors import TrainingError
+from pipeline.errors import ModelFileError, TrainingError
 from pipeline.modelfile import FORMAT_VERSION, TOOL, read_archive, save_atomic
 
 CHECKPOINT_SUFFIX = ".ckpt"
@@ -125,7 +125,7 @@ def save_checkpoint(
     }, path)
 
 
-def load_checkpoint(path: Path, *, settings: Settings, bank: dict[str, Any]) -> Checkpoint:
+def _read_checkpoint(path: Path, *, settings: Settings, bank: dict[str, Any]) -> Checkpoint:
     """Read a checkpoint and refuse one made with other audio or model settings or another bank.
 
     Raises
@@ -155,3 +155,22 @@ def load_checkpoint(path: Path, *, settings: Settings, bank: dict[str, Any]) -> 
         state=TrainState.from_dict(ckpt["state"]), model_state=ckpt["model_state"],
         optimizer_state=ckpt["optimizer_state"], kept=kept, rng=ckpt["rng"],
     )
+
+
+def load_checkpoint(path: Path, *, settings: Settings, bank: dict[str, Any]) -> Checkpoint:
+    """:func:`_read_checkpoint`, with a checkpoint whose fields have the wrong type or shape
+    (damaged or hand-made) refused in one line naming it, as model files are."""
+    try:
+        ckpt = _read_checkpoint(path, settings=settings, bank=bank)
+        ok = (isinstance(ckpt.model_state, dict) and isinstance(ckpt.optimizer_state, dict)
+              and isinstance(ckpt.rng, dict) and isinstance(ckpt.rng.get("torch"), torch.Tensor)
+              and all(isinstance(h, dict) for h in ckpt.state.history)
+              and isinstance(ckpt.state.best, (dict, type(None))))
+    except (KeyError, TypeError, ValueError, AttributeError, IndexError) as exc:
+        first = (str(exc).strip().splitlines() or [type(exc).__name__])[0][:120]
+        raise ModelFileError(f"{path}: damaged training checkpoint ({first}); "
+                             "train afresh without --resume") from None
+    if not ok:
+        raise ModelFileError(f"{path}: damaged training checkpoint (weights, optimizer, random "
+                             "state or history of the wrong type); train afresh without --resume")
+    return ckpt

@@ -8,6 +8,7 @@ that it does not are not vacuous.
 
 from __future__ import annotations
 
+import io
 import json
 import pathlib
 import pickle
@@ -291,3 +292,43 @@ def test_model_file_json_fields_are_plain_data(tmp_path):
     mf = load_model_file(write_model_file(tmp_path / "m.pt", TINY))
     json.dumps({"history": mf.history, "best": mf.best, "categories": mf.categories,
                 "names": mf.clip_names, "bank": mf.bank, "settings": mf.settings.to_dict()})
+
+
+def test_a_damaged_training_checkpoint_is_refused_in_one_line(tmp_path):
+    """Found beyond issue 13 (its model-file item's sibling): fields of the wrong type in
+    MODEL.ckpt raised TypeError or ValueError on --resume."""
+    import threading
+
+    from badfiles import hit, wav_bytes
+    from modelfiles import small_preset
+
+    from pipeline.config import load_settings
+    from pipeline.ingest import ingest_folder
+    from pipeline.train import train_model
+
+    src = tmp_path / "src"
+    src.mkdir()
+    for i in range(4):
+        (src / f"s{i}.wav").write_bytes(wav_bytes(hit(16000, f0=200 + 50 * i, seed=i), 16000))
+    settings = load_settings(small_preset(tmp_path, epochs=2))
+    ingest_folder(src, tmp_path / "bank", settings, jobs=1)
+    stop = threading.Event()
+    stop.set()  # stop after the first batch: the checkpoint is written, the model is not
+    s = train_model(tmp_path / "bank", tmp_path / "m.pt", settings, interrupt=stop)
+    ckpt = Path(s.checkpoint)
+    good = ckpt.read_bytes()
+    for name, damage in {
+        "state not a mapping": lambda d: d.update(state=3),
+        "history of text": lambda d: d["state"].update(history="x"),
+        "sums of text": lambda d: d["state"].update(sums="ab"),
+        "rng a list": lambda d: d.update(rng=[1]),
+        "weights a list": lambda d: d.update(model_state=[1]),
+    }.items():
+        d = torch.load(io.BytesIO(good), weights_only=True)
+        damage(d)
+        save_atomic(d, ckpt)
+        with pytest.raises(ModelFileError) as info:
+            train_model(tmp_path / "bank", tmp_path / "m.pt", settings, resume=True)
+        assert "damaged training checkpoint" in _one_line(info.value, ckpt), name
+    ckpt.write_bytes(good)  # control: the undamaged checkpoint resumes
+    assert train_model(tmp_path / "bank", tmp_path / "m.pt", settings, resume=True).epochs == 2
