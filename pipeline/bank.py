@@ -55,12 +55,22 @@ class Bank:
 
     def fingerprint(self) -> str:
         """SHA-256 of the clip names and every spectrum: two banks whose clips share names
-        but not sounds differ here (read once in chunks, about a second per gigabyte)."""
+        but not sounds differ here (read once in chunks, about a second per gigabyte).
+
+        Raises :class:`BankError` naming the clip if a spectrum holds NaN or infinite
+        values (a damaged file: training would only say that its loss became non-finite).
+        """
         h = hashlib.sha256("\n".join(self.names).encode("utf-8") + b"\0")
         h.update(f"{self.spectra.dtype.str}{tuple(self.spectra.shape)}".encode())
         step = max(1, (64 << 20) // max(1, self.spectra[:1].nbytes))
         for i in range(0, len(self.spectra), step):
-            h.update(np.ascontiguousarray(self.spectra[i : i + step]).tobytes())
+            chunk = np.ascontiguousarray(self.spectra[i : i + step])
+            bad = np.flatnonzero(~np.isfinite(chunk.reshape(len(chunk), -1)).all(axis=1))
+            if bad.size:
+                raise BankError(f"{self.path / SPECTRA_FILE}: clip {self.names[i + bad[0]]} "
+                                "holds NaN or infinite values (a damaged file; delete the bank "
+                                "and ingest again)")
+            h.update(chunk.tobytes())
         return h.hexdigest()
 
     @property

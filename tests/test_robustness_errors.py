@@ -7,6 +7,7 @@ A user-caused failure is one line on stderr, ``error: <file or option>: <reason>
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 from pathlib import Path
@@ -373,3 +374,25 @@ def test_a_damaged_bank_index_is_one_line_and_ingest_rebuilds_it(w, tmp_path, da
     result = runner.invoke(app, ["ingest", str(w["src"]), "--bank", str(bank), "--preset", "tiny"])
     assert result.exit_code == 0, result.output
     assert tree_digest(w["src"]) == w["src_digest"]
+
+
+def test_nan_in_a_bank_spectrum_names_the_file_and_clip(w, tmp_path):
+    """Beyond issue 13 (its bit-rot item's sibling, in the bank): a NaN in spectra.npy made
+    training stop with 'the training loss became non-finite ... try a lower learning_rate'."""
+    import shutil
+
+    import numpy as np
+
+    bank = tmp_path / "bank"
+    shutil.copytree(w["bank"], bank)
+    spectra = np.load(bank / "spectra.npy", mmap_mode="r+")
+    spectra[2, 10, 5] = np.nan
+    spectra.flush()
+    del spectra
+    name = json.loads((bank / "index.json").read_text("utf-8"))["clips"][2]["name"]
+    result = runner.invoke(app, ["train", str(bank), "--model", str(tmp_path / "m.pt")])
+    assert result.exit_code == 1, result.output
+    assert result.stderr.strip() == (f"error: {bank / 'spectra.npy'}: clip {name} holds NaN "
+                                     "or infinite values (a damaged file; delete the bank "
+                                     "and ingest again)")
+    assert not (tmp_path / "m.pt").exists()
