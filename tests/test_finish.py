@@ -9,12 +9,9 @@ import scipy.signal
 from pipeline import finish
 from pipeline.config import RenderSpec
 
+RNG_SEED = 177042  # conftest's rng fixture: the draws these tests were written with
+
 SR = 48000
-
-
-@pytest.fixture
-def rng():
-    return np.random.default_rng(177042)
 
 
 def _db(x):

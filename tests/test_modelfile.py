@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
-from synthbank import small_bank, small_settings
+from synthbank import small_settings
 
 from pipeline.bank import open_bank
 from pipeline.errors import ModelFileError, ParameterError
@@ -21,15 +21,12 @@ from pipeline.modelfile import (
     remove_stale_temporaries,
     save_atomic,
 )
-from pipeline.train import checkpoint_path, train_model
+from pipeline.train import checkpoint_path
 
 
 @pytest.fixture(scope="module")
-def trained(tmp_path_factory) -> tuple[Path, Path]:
-    work = tmp_path_factory.mktemp("modelfile")
-    bank = small_bank(work / "bank", n=36)
-    train_model(bank, work / "m.pt", small_settings(epochs=3))
-    return work / "m.pt", bank
+def trained(small_model) -> tuple[Path, Path]:
+    return small_model  # conftest: three epochs on a shared bank of 36 clips
 
 
 def payload(path: Path) -> dict:

@@ -26,11 +26,6 @@ DEAD_PID = int(Path("/proc/sys/kernel/pid_max").read_text()) + 1 if Path(
     "/proc/sys/kernel/pid_max").exists() else 2**22 + 1  # no such process
 
 
-@pytest.fixture
-def rng():
-    return np.random.default_rng(1770)
-
-
 def _full(*a, **k):
     raise OSError(errno.ENOSPC, "No space left on device")
 

@@ -9,12 +9,9 @@ import pytest
 from pipeline import phase, spectra
 from pipeline.errors import ParameterError
 
+RNG_SEED = 1984  # conftest's rng fixture: the draws these tests were written with
+
 SR, N_FFT, HOP, N = 16000, 512, 128, 8000  # the tiny preset's STFT
-
-
-@pytest.fixture
-def rng():
-    return np.random.default_rng(1984)
 
 
 def _harmonic(n=N, f0=220.0, sr=SR):

@@ -19,11 +19,6 @@ SR = 48000
 TINY = load_settings("tiny")
 
 
-@pytest.fixture
-def rng():
-    return np.random.default_rng(1770)
-
-
 def _sine(f=997.0, seconds=1.0, amp=1.0, sr=SR):
     return amp * np.sin(2 * np.pi * f * np.arange(int(seconds * sr)) / sr)
 

@@ -10,13 +10,10 @@ import scipy.signal
 from pipeline import spectra
 from pipeline.config import load_settings
 
+RNG_SEED = 20240611  # conftest's rng fixture: the draws these tests were written with
+
 PRESETS = ["tiny", "drums", "long"]
 STFTS = [(512, 128), (1024, 256), (2048, 512)]
-
-
-@pytest.fixture
-def rng():
-    return np.random.default_rng(20240611)
 
 
 def _signal(rng, n):

@@ -17,7 +17,6 @@ from synthbank import (
     SMALL_AUDIO,
     make_bank,
     param_spectra,
-    small_bank,
     small_settings,
     write_spectra_bank,
 )
@@ -33,8 +32,8 @@ TESTS = Path(__file__).resolve().parent
 
 
 @pytest.fixture(scope="module")
-def bank(tmp_path_factory) -> Path:
-    return small_bank(tmp_path_factory.mktemp("bank") / "bank", n=48)
+def bank(small_banks) -> Path:
+    return small_banks(48)
 
 
 def weights(path: Path) -> dict[str, torch.Tensor]:
