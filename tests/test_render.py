@@ -31,7 +31,7 @@ def test_997_hz_full_scale_sine_reads_minus_3_01_lufs():
     y = _sine(seconds=10.0)
     got = render.integrated_loudness(y, SR)
     # BS.1770-4 Annex 1: a 0 dBFS 997 Hz sine reads -3.01 LKFS; pyloudnorm reads -3.05
-    # (its K-filter is built from cookbook biquads; references.md section 1)
+    # (its K-filter is built from cookbook biquads; tests/references.md section 1)
     assert got == pytest.approx(-3.01, abs=0.05)
     assert got == pytest.approx(pyloudnorm.Meter(SR).integrated_loudness(y), abs=1e-9)
     assert render.integrated_loudness(0.1 * y, SR) == pytest.approx(-23.05, abs=0.01)
@@ -45,7 +45,7 @@ def test_loudness_targets_land_within_0_1_lu_under_the_ceiling(rng, target, bit_
     spec = RenderSpec(loudness=target, bit_depth=bit_depth, peak_db=-1.0)
     out, info = render.finish_audio(y, SR, spec, rng=rng)
     measured = pyloudnorm.Meter(SR).integrated_loudness(out.astype(np.float64))
-    # EBU R 128 / AES TD1008 targets; the tolerance is the one references.md section 2 asks
+    # EBU R 128 / AES TD1008 targets; the tolerance is the one tests/references.md section 2 asks
     assert measured == pytest.approx(target, abs=0.1), info
     assert np.max(np.abs(out)) <= _ceiling(-1.0)
     assert info["normalisation"] == f"loudness {target:g} LUFS"
