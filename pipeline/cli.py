@@ -27,6 +27,7 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,  # plain help: the rich panels print "<bool>" after every flag
 )
 
 _state = {"debug": False}
@@ -251,6 +252,12 @@ def _written_line(s: dict[str, Any], out: Path) -> str:
         line += f" ({s['skipped']} files skipped, reasons in the manifest)"
     if s.get("median_sc_db") is not None:
         line += f"; median spectral convergence {s['median_sc_db']:.1f} dB"
+    short = s.get("loudness_unmet")
+    if short:
+        line += (f"\n{short['count']} of {short['of']} sounds could not reach "
+                 f"{short['target_lufs']:g} LUFS under the {short['peak_db']:g} dBTP ceiling; "
+                 f"the furthest, {short['file']}, is at {short['loudness_lufs']:.1f} LUFS "
+                 f"({short['short_by_lu']:.1f} LU short)")
     return line
 
 
@@ -376,11 +383,11 @@ def generate(
 @_friendly
 def interpolate(
     model: Annotated[Path, typer.Argument(help="Model file.")],
+    out: Annotated[Path, typer.Option("--out", help="Output folder.")],
     waypoints: Annotated[
         list[str] | None,
         typer.Argument(help="Two or more clip names (or audio files) to pass through, in order."),
     ] = None,
-    out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("."),
     steps: Annotated[int, typer.Option("--steps", min=2, help="Sounds along the path.")] = 8,
     path: Annotated[str, typer.Option("--path", help="slerp (default) or lerp.")] = "slerp",
     jobs_file: Annotated[
@@ -468,6 +475,19 @@ def inspect(
 
     health = inspect_model(model, out, bank=bank, seed=seed, overwrite=overwrite)
     _emit(health, as_json, format_health_table(health))
+
+
+@app.command()
+@_friendly
+def info(
+    model: Annotated[Path, typer.Argument(help="Model file written by 'shotsmith train'.")],
+    as_json: JsonOpt = False,
+) -> None:
+    """What a model holds: its clips and categories, and how it was trained."""
+    from pipeline.info import format_info, model_info
+
+    s = model_info(model)
+    _emit(s, as_json, format_info(s))
 
 
 @app.command()
