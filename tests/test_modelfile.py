@@ -33,6 +33,7 @@ def payload(path: Path) -> dict:
     return torch.load(path, weights_only=True)
 
 
+@pytest.mark.slow
 def test_model_file_loads_with_weights_only_in_a_fresh_process(trained):
     model, _ = trained
     code = (

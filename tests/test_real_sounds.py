@@ -79,6 +79,7 @@ def test_every_real_file_is_accepted_or_listed_with_a_reason(ingested):
         assert all(c["path"].endswith(".oga") for c in bank.clips)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", sorted(COLLECTIONS))
 def test_real_sounds_resynthesize_to_a_stated_spectral_convergence(name, tmp_path):
     """Resynthesis (front end -> spectra -> fast Griffin-Lim, 64 iterations -> WAV) of real sounds.

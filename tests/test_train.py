@@ -279,6 +279,7 @@ def _wait_for(proc: subprocess.Popen, line: str) -> None:
     raise AssertionError(f"child ended before {line!r} (rc {proc.wait()})")
 
 
+@pytest.mark.slow
 def test_sigkill_right_after_a_checkpoint_leaves_a_loadable_model(bank, tmp_path):
     model = tmp_path / "m.pt"
     proc = _child(bank, model)
@@ -298,6 +299,7 @@ def test_sigkill_right_after_a_checkpoint_leaves_a_loadable_model(bank, tmp_path
     assert sorted(p.name for p in tmp_path.iterdir()) == ["m.pt"]  # no temporaries left
 
 
+@pytest.mark.slow
 def test_ctrl_c_stops_saves_and_prints_the_resume_command(bank, tmp_path):
     model = tmp_path / "m.pt"
     proc = _child(bank, model)
