@@ -116,9 +116,11 @@ def resolve_sound(mf, text: str) -> Waypoint:
         y = load_clip(path, mf.audio)
         mu, logvar = mf.encode(clip_to_unit(y, mf.audio)[None])
         return Waypoint(path.stem, mu[0], logvar[0], {"file": str(path)})
+    older = ("; this model file holds no library paths (trained before they were stored): "
+             "name the clip" if not paths and "/" in text.replace("\\", "/") else "")
     raise ParameterError(
         f"{text!r} is neither a clip in the model nor an audio file "
-        f"(clips look like {', '.join(names[:3])} ...)"
+        f"(clips look like {', '.join(names[:3])} ...{older})"
     )
 
 

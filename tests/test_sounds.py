@@ -107,3 +107,17 @@ def test_the_package_re_exports_the_api_lazily():
             "print('torch' in sys.modules)\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_a_path_given_to_an_older_model_file_asks_for_the_clip_name(tmp_path):
+    from modelfiles import write_model_file
+    from synthbank import small_settings
+
+    older = load_model_file(write_model_file(tmp_path / "old.pt", small_settings()))
+    assert older.clip_paths == []  # written without them, as before they were stored
+    with pytest.raises(ParameterError, match="holds no library paths.*name the clip"):
+        sounds.resolve_sound(older, "kick/kick_00.wav")
+    with pytest.raises(ParameterError) as plain:
+        sounds.resolve_sound(older, "nothing")
+    assert "library paths" not in str(plain.value)
+    assert sounds.resolve_sound(older, "kick_00").label == "kick_00"
