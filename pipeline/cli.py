@@ -353,8 +353,9 @@ def generate(
         str | None, typer.Option("--near", help="Sample near this category of the library.")
     ] = None,
     prior: Annotated[
-        str, typer.Option("--prior", help="fitted: the mixture fitted to the library's codes "
-                                          "(default); normal: the VAE prior N(0, I).")
+        str, typer.Option("--prior", help="fitted: kernels at the library's codes (default); "
+                                          "mixture: a smoother mixture (BIC); "
+                                          "normal: the VAE prior N(0, I).")
     ] = "fitted",
     seed: SeedOpt = None,
     iterations: IterOpt = None,

@@ -107,9 +107,10 @@ def generate_sounds(
 ) -> dict[str, Any]:
     """``n`` new one-shots from where the library lives, or near one category of it.
 
-    ``prior="fitted"`` (default) samples the Gaussian mixture fitted to the clips' codes
-    (:mod:`pipeline.sampler`), with ``near`` that category's own mixture; ``"normal"``
-    samples the VAE's prior N(0, T²I). ``temperature`` T scales the spread.
+    ``prior="fitted"`` (default) samples the kernel density fitted to the clips' codes
+    (:mod:`pipeline.sampler`), with ``near`` that category's own; ``"mixture"`` a
+    full-covariance mixture with components chosen by BIC (smoother, further from the
+    clips); ``"normal"`` the VAE's prior N(0, T²I). ``temperature`` T scales the spread.
     """
     check_generate(n, prior, near)
     mf = load(model)

@@ -246,7 +246,7 @@ class ModelFile:
         """The mixtures fitted to the clips' codes (stored, or fitted now: a file saved
         before training ended holds none; the fit is seeded, so both give the same)."""
         if self.stored_samplers is None:
-            self.stored_samplers = fit_samplers(self.mu, self.clip_categories, seed=0)
+            self.stored_samplers = fit_samplers(self.mu, self.clip_categories)
         return self.stored_samplers
 
     @property

@@ -27,10 +27,10 @@ from pipeline import latent
 from pipeline.config import RenderSpec
 from pipeline.errors import ParameterError
 from pipeline.outputs import numbered
-from pipeline.sampler import draw_codes
+from pipeline.sampler import draw_codes, fit_mixture, sample_mixture
 
 PATH_KINDS = ("slerp", "lerp")
-PRIORS = ("fitted", "normal")  # generate: the mixture fitted to the codes, or N(0, I)
+PRIORS = ("fitted", "mixture", "normal")  # generate: kernels at the codes, a BIC mixture, N(0, I)
 Numbering = Callable[[str], int]  # a stem to the first number of its batch
 
 
@@ -130,9 +130,9 @@ def check_generate(n: int, prior: str, near: str | None) -> None:
         raise ParameterError(f"n={n} must be at least 1")
     if prior not in PRIORS:
         raise ParameterError(f"prior={prior!r} must be one of {', '.join(PRIORS)}")
-    if prior == "normal" and near is not None:
-        raise ParameterError("near= samples the category's fitted mixture; it does not "
-                             "combine with prior='normal'")
+    if prior != "fitted" and near is not None:
+        raise ParameterError(f"near= samples the category's fitted kernels; it does not "
+                             f"combine with prior={prior!r}")
 
 
 def check_count(n: int) -> None:
@@ -143,14 +143,17 @@ def check_count(n: int) -> None:
 def plan_generate(mf, *, n: int = 16, temperature: float = 1.0, near: str | None = None,
                   seed: int | None = None, prior: str = "fitted",
                   numbering: Numbering = _from_zero) -> Plan:
-    """``n`` codes from the mixture fitted to the clips' codes (``near``: one category's),
-    or from N(0, T²I) with ``prior="normal"``."""
+    """``n`` codes from the kernels fitted to the clips' codes (``near``: one category's),
+    from a mixture with components chosen by BIC (``prior="mixture"``), or from N(0, T²I)
+    (``prior="normal"``)."""
     check_generate(n, prior, near)
     seed = pick_seed(seed)
     rng = np.random.default_rng(seed)
     sources: list[str] = [] if near is None else [f"category:{near}"]
     if prior == "normal":
         Z = latent.sample_prior(n, mf.mu.shape[1], temperature=temperature, rng=rng)
+    elif prior == "mixture":
+        Z = sample_mixture(fit_mixture(mf.mu, seed=0), n, temperature=temperature, rng=rng)
     else:
         Z = draw_codes(*mf.samplers(), n, near=near, temperature=temperature, rng=rng)
     items = [

@@ -228,7 +228,7 @@ class RunFiles:
         if not self.enabled:
             return
         cats = [c.get("category") for c in self.bank.clips]
-        samplers = fit_samplers(kept.mu, cats, seed=0) if final else None
+        samplers = fit_samplers(kept.mu, cats) if final else None
         save_atomic(model_payload(
             settings=self.settings, state_dict=kept.weights, history=st.history, best=st.best,
             clip_names=self.bank.names, clip_categories=cats, mu=kept.mu, logvar=kept.logvar,

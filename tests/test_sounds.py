@@ -121,3 +121,17 @@ def test_a_path_given_to_an_older_model_file_asks_for_the_clip_name(tmp_path):
         sounds.resolve_sound(older, "nothing")
     assert "library paths" not in str(plain.value)
     assert sounds.resolve_sound(older, "kick_00").label == "kick_00"
+
+
+def test_each_prior_draws_its_own_codes(mf):
+    fitted = sounds.plan_generate(mf, n=64, seed=3).codes
+    mixture = sounds.plan_generate(mf, n=64, seed=3, prior="mixture").codes
+    normal = sounds.plan_generate(mf, n=64, seed=3, prior="normal").codes
+    # kernels sit on the clips' codes: their samples lie nearer to the nearest code than
+    # the prior's do (the codes of a trained VAE do not fill N(0, I))
+    def nearest(Z):
+        return np.median(np.min(np.linalg.norm(Z[:, None] - mf.mu[None], axis=2), axis=1))
+    assert nearest(fitted) < nearest(normal)
+    assert not np.allclose(fitted, mixture) and np.all(np.isfinite(mixture))
+    with pytest.raises(ParameterError, match="does not combine with prior='mixture'"):
+        sounds.plan_generate(mf, n=2, near=mf.clip_categories[0], prior="mixture")
