@@ -119,8 +119,9 @@ def fft_floor(B: int, n_fft: int, frames: int) -> float:
     X = scipy.fft.rfft(x, axis=-1)
 
     def chunk(_: int) -> None:
-        for _ in range(N_ITER):
-            scipy.fft.irfft(X, n=n_fft, axis=-1)
+        Y = X.copy()
+        for _ in range(N_ITER):  # the inverse may overwrite its input, as phase.py lets it
+            scipy.fft.irfft(Y, n=n_fft, axis=-1, overwrite_x=True)
             scipy.fft.rfft(x, axis=-1)
 
     t = time.perf_counter()
