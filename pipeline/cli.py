@@ -27,6 +27,7 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,  # plain help: the rich panels print "<bool>" after every flag
 )
 
 _state = {"debug": False}
@@ -122,8 +123,8 @@ TrimOpt = Annotated[
     typer.Option("--trim/--no-trim",
                  help="End each file where its sound ends (default: full length, silent tail)."),
 ]
-SEED_MAX = 2**32 - 1  # pipeline.create.MAX_SEED (not imported: it would load numpy for --help)
-COUNT_MAX = 100_000  # pipeline.create.MAX_SOUNDS
+SEED_MAX = 2**32 - 1  # pipeline.sounds.MAX_SEED (not imported: it would load numpy for --help)
+COUNT_MAX = 100_000  # pipeline.sounds.MAX_SOUNDS
 SPREAD_MAX = 100.0  # pipeline.latent.MAX_SPREAD
 SeedOpt = Annotated[int | None, typer.Option("--seed", min=0, max=SEED_MAX,
                                              help="Random seed (repeatable output).")]
@@ -257,6 +258,12 @@ def _written_line(s: dict[str, Any], out: Path) -> str:
         line += f" ({s['skipped']} files skipped, reasons in the manifest)"
     if s.get("median_sc_db") is not None:
         line += f"; median spectral convergence {s['median_sc_db']:.1f} dB"
+    short = s.get("loudness_unmet")
+    if short:
+        line += (f"\n{short['count']} of {short['of']} sounds could not reach "
+                 f"{short['target_lufs']:g} LUFS under the {short['peak_db']:g} dBTP ceiling; "
+                 f"the furthest, {short['file']}, is at {short['loudness_lufs']:.1f} LUFS "
+                 f"({short['short_by_lu']:.1f} LU short)")
     return line
 
 
@@ -353,8 +360,9 @@ def generate(
         str | None, typer.Option("--near", help="Sample near this category of the library.")
     ] = None,
     prior: Annotated[
-        str, typer.Option("--prior", help="fitted: the mixture fitted to the library's codes "
-                                          "(default); normal: the VAE prior N(0, I).")
+        str, typer.Option("--prior", help="fitted: kernels at the library's codes (default); "
+                                          "mixture: a smoother mixture (BIC); "
+                                          "normal: the VAE prior N(0, I).")
     ] = "fitted",
     seed: SeedOpt = None,
     iterations: IterOpt = None,
@@ -383,11 +391,11 @@ def generate(
 @_friendly
 def interpolate(
     model: Annotated[Path, typer.Argument(help="Model file.")],
+    out: Annotated[Path, typer.Option("--out", help="Output folder.")],
     waypoints: Annotated[
         list[str] | None,
         typer.Argument(help="Two or more clip names (or audio files) to pass through, in order."),
     ] = None,
-    out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("."),
     steps: Annotated[int, typer.Option("--steps", min=2, max=COUNT_MAX,
                                        help="Sounds along the path.")] = 8,
     path: Annotated[str, typer.Option("--path", help="slerp (default) or lerp.")] = "slerp",
@@ -477,6 +485,19 @@ def inspect(
 
     health = inspect_model(model, out, bank=bank, seed=seed, overwrite=overwrite)
     _emit(health, as_json, format_health_table(health))
+
+
+@app.command()
+@_friendly
+def info(
+    model: Annotated[Path, typer.Argument(help="Model file written by 'shotsmith train'.")],
+    as_json: JsonOpt = False,
+) -> None:
+    """What a model holds: its clips and categories, and how it was trained."""
+    from pipeline.info import format_info, model_info
+
+    s = model_info(model)
+    _emit(s, as_json, format_info(s))
 
 
 @app.command()

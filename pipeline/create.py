@@ -1,170 +1,92 @@
-"""New one-shots from a model file: generate, interpolate, vary.
+"""New one-shots from a model file, written as WAVs with a manifest: generate, interpolate, vary.
 
-Each command turns its request into a batch of latent codes (pure functions in
-:mod:`pipeline.latent`), then the shared path decodes them in batches, runs the
-batched fast Griffin-Lim, finishes and writes WAVs with a manifest
-(:func:`pipeline.render.render_spectra`). Every item records its code, seed,
-sources and nearest training clip, so near-copies of the library stand out.
+Each command makes the same plan as its in-memory twin in :mod:`pipeline.sounds` (the
+request as latent codes and per-sound metadata; new files numbered after those already in
+the folder), then hands the decoded batches to the shared writer
+(:func:`pipeline.render.render_spectra`: phase, finishing, WAVs, manifest). Every item
+records its code, seed, sources and nearest training clip, so near-copies of the library
+stand out.
 """
 
 from __future__ import annotations
 
 import csv
-import secrets
 import sys
-from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from pipeline import latent
 from pipeline.config import RenderSpec
-from pipeline.errors import ParameterError, ShotsmithError
-from pipeline.outputs import next_number, numbered, refuse_library
-from pipeline.sampler import draw_codes
+from pipeline.errors import ShotsmithError
+from pipeline.outputs import next_number, refuse_library
+from pipeline.sounds import (  # noqa: F401 - re-exported: the planning half lives there
+    MAX_SOUNDS,
+    PATH_KINDS,
+    PRIORS,
+    Plan,
+    Waypoint,
+    check_count,
+    check_generate,
+    check_seed,
+    check_sounds,
+    decoded_batches,
+    load,
+    path_items,
+    pick_seed,
+    plan_generate,
+    plan_interpolate,
+    plan_vary,
+    render_spec,
+    resolve_sound,
+)
 
 if sys.version_info >= (3, 11):
     import tomllib
 else:  # pragma: no cover
     import tomli as tomllib
 
-PATH_KINDS = ("slerp", "lerp")
-PRIORS = ("fitted", "normal")  # generate: the mixture fitted to the codes, or N(0, I)
+_load, _seed, _path_items = load, pick_seed, path_items  # the names older callers use
 
 
-@dataclass(frozen=True)
-class Waypoint:
-    """A resolved sound: its latent posterior and a label for file names."""
-
-    label: str
-    mu: np.ndarray
-    logvar: np.ndarray
-    source: dict[str, Any]
-
-
-def _load(model):
-    """A loaded :class:`~pipeline.modelfile.ModelFile` as it is, or the model file at a path."""
-    from pipeline.modelfile import ModelFile, load_model_file  # torch: only when generating
-
-    return model if isinstance(model, ModelFile) else load_model_file(model)
-
-
-# At most this many sounds per request (generate -n, vary -n, interpolate --steps, a jobs
-# file in all): every item's code and record are held while its batches render; a larger
-# set is made by running again into the same folder.
-MAX_SOUNDS = 100_000
-MAX_SEED = 2**32 - 1  # numpy and torch both take it; -1 and 2**64 they refuse
-
-
-def check_seed(seed: Any) -> int:
-    """A seed as an int in [0, MAX_SEED], or a ParameterError naming it."""
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) \
-            or not 0 <= seed <= MAX_SEED:
-        raise ParameterError(f"seed={seed!r} must be a whole number between 0 and {MAX_SEED}")
-    return int(seed)
-
-
-def check_sounds(n: Any, name: str, *, low: int = 1) -> int:
-    """A count of sounds to render, between ``low`` and :data:`MAX_SOUNDS`."""
-    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) \
-            or not low <= n <= MAX_SOUNDS:
-        raise ParameterError(f"{name}={n!r} must be a whole number between {low} and "
-                             f"{MAX_SOUNDS} (render more by running again into the folder)")
-    return int(n)
-
-
-def _seed(seed: int | None) -> int:
-    return int(secrets.randbits(31)) if seed is None else check_seed(seed)
-
-
-def resolve_sound(mf, text: str) -> Waypoint:
-    """A clip from the model (exact name, relative path or unique prefix), or an audio file."""
-    names = list(mf.clip_names)
-    paths = list(getattr(mf, "clip_paths", None) or [])
-    hits = [i for i, n in enumerate(names) if n == text]
-    if not hits and paths:
-        stripped = text.replace("\\", "/")
-        hits = [i for i, p in enumerate(paths) if p == stripped or p.rsplit(".", 1)[0] == stripped]
-    if not hits:
-        hits = [i for i, n in enumerate(names) if n.startswith(text)]
-    if len(hits) == 1:
-        i = hits[0]
-        return Waypoint(names[i], mf.mu[i], mf.logvar[i], {"clip": names[i]})
-    if len(hits) > 1:
-        shown = ", ".join(names[i] for i in hits[:12]) + (" ..." if len(hits) > 12 else "")
-        raise ParameterError(f"{text!r} matches {len(hits)} clips: {shown}; give more of the name")
-    path = Path(text)
-    if path.is_file():
-        from pipeline.ingest import load_clip
-        from pipeline.spectra import clip_to_unit
-
-        y = load_clip(path, mf.audio)
-        mu, logvar = mf.encode(clip_to_unit(y, mf.audio)[None])
-        return Waypoint(path.stem, mu[0], logvar[0], {"file": str(path)})
-    raise ParameterError(
-        f"{text!r} is neither a clip in the model nor an audio file "
-        f"(clips look like {', '.join(names[:3])} ...)"
-    )
-
-
-def _nearest(mf, Z: np.ndarray) -> list[dict[str, Any]]:
-    idx, dist = latent.nearest_codes(Z, mf.mu)
-    spacing = max(latent.typical_spacing(mf.mu), 1e-12)
-    return [
-        {"name": mf.clip_names[i], "distance": float(d), "distance_ratio": float(d / spacing)}
-        for i, d in zip(idx, dist)
-    ]
+def _numbering(out: Path, overwrite: bool) -> Callable[[str], int]:
+    """New files start after the numbered ones already in ``out`` (from 0 with overwrite)."""
+    return lambda stem: 0 if overwrite else next_number(out, stem)
 
 
 def _render(
     mf,
-    Z: np.ndarray,
-    items: list[dict[str, Any]],
+    plan: Plan,
     out: Path,
     *,
-    seed: int,
     render: RenderSpec | None,
     overwrite: bool,
     progress: Callable[..., None] | None,
-    summary: dict[str, Any],
 ) -> dict[str, Any]:
-    """Decode codes in batches and hand them to the shared renderer."""
-    from pipeline.render import render_spectra
+    """Decode a plan in batches and write it through the shared renderer."""
+    from pipeline.render import loudness_shortfall, render_spectra
 
-    if render is not None and not isinstance(render, RenderSpec):
-        raise ParameterError("render must be a RenderSpec (e.g. mf.settings.render or "
-                             "settings.with_overrides({'render': {...}}).render), or None")
+    spec = render_spec(mf, render)
     refuse_library(out, option="--out", model=mf)
-    render_spec = render or mf.settings.render
-    settings = mf.settings.replace(render=render_spec)
-    for item, z, near in zip(items, Z, _nearest(mf, Z)):
-        item["z"] = [round(float(v), 6) for v in z]
-        item["nearest"] = near
-    bs = render_spec.batch_size
-
-    def batches() -> Iterator[tuple[np.ndarray, list[dict[str, Any]]]]:
-        for start in range(0, len(items), bs):
-            yield mf.decode(Z[start : start + bs]), items[start : start + bs]
-
     written = render_spectra(
-        batches(),
+        decoded_batches(mf, plan, spec.batch_size),
         out,
         mf.audio,
-        render_spec,
+        spec,
         overwrite=overwrite,
-        seed=seed,
+        seed=plan.seed,
         progress=progress,
-        total=len(items),
+        total=len(plan.items),
         manifest_extra={
             "model": {"path": str(mf.path), "sha256": mf.sha256},
-            "settings": settings.to_dict(),
-            "request": summary,
+            "settings": mf.settings.replace(render=spec).to_dict(),
+            "request": plan.request,
         },
     )
     ratios = [it["nearest"]["distance_ratio"] for it in written]
-    return summary | {
+    return plan.request | {
+        "loudness_unmet": loudness_shortfall(written, spec),
         "written": len(written),
         "out": str(out),
         "manifest": str(Path(out) / "manifest.json"),
@@ -188,80 +110,21 @@ def generate_sounds(
 ) -> dict[str, Any]:
     """``n`` new one-shots from where the library lives, or near one category of it.
 
-    ``prior="fitted"`` (default) samples the Gaussian mixture fitted to the clips' codes
-    (:mod:`pipeline.sampler`), with ``near`` that category's own mixture; ``"normal"``
-    samples the VAE's prior N(0, T²I). ``temperature`` T scales the spread.
+    ``prior="fitted"`` (default) samples the kernel density fitted to the clips' codes
+    (:mod:`pipeline.sampler`), with ``near`` that category's own; ``"mixture"`` a
+    full-covariance mixture with components chosen by BIC (smoother, further from the
+    clips); ``"normal"`` the VAE's prior N(0, T²I). ``temperature`` T scales the spread.
     """
-    n, seed = check_sounds(n, "n"), _seed(seed)
-    latent.check_spread(temperature, "temperature")
-    if prior not in PRIORS:
-        raise ParameterError(f"prior={prior!r} must be one of {', '.join(PRIORS)}")
-    if prior == "normal" and near is not None:
-        raise ParameterError("near= samples the category's fitted mixture; it does not "
-                             "combine with prior='normal'")
-    mf = _load(model)
-    rng = np.random.default_rng(seed)
-    sources: list[str] = [] if near is None else [f"category:{near}"]
-    if prior == "normal":
-        Z = latent.sample_prior(n, mf.mu.shape[1], temperature=temperature, rng=rng)
-    else:
-        Z = draw_codes(*mf.samplers(), n, near=near, temperature=temperature, rng=rng)
-    start = 0 if overwrite else next_number(out, "generate")  # add after what is there
-    items = [
-        {"stem": "generate", "suffix": suffix, "kind": "generate", "seed": seed + i,
-         "sources": sources}
-        for i, suffix in enumerate(numbered(start, n, width=4))
-    ]
-    request = {
-        "command": "generate",
-        "n": n,
-        "temperature": temperature,
-        "near": near,
-        "prior": prior,
-        "seed": seed,
-    }
-    return _render(
-        mf,
-        Z,
-        items,
-        out,
-        seed=seed,
-        render=render,
-        overwrite=overwrite,
-        progress=progress,
-        summary=request,
-    )
-
-
-def _path_items(
-    points: Sequence[Waypoint], steps: int, kind: str, seed: int, label: str | None = None
-) -> tuple[np.ndarray, list[dict[str, Any]]]:
-    if kind not in PATH_KINDS:
-        raise ParameterError(f"path={kind!r} must be slerp or lerp")
-    if len(points) < 2:
-        raise ParameterError("an interpolation needs at least two sounds")
-    steps = check_sounds(steps, "steps", low=2)
-    Z = latent.latent_path(np.stack([p.mu for p in points]), steps, kind=kind)
-    stem = label or "interpolate-" + "-to-".join(p.label for p in points)
-    sources = [p.source.get("clip") or p.source.get("file") for p in points]
-    items = [
-        {
-            "stem": stem,
-            "suffix": suffix,  # the step: never cut from a long name, so files sort in order
-            "kind": "interpolate",
-            "seed": seed + i,
-            "sources": sources,
-            "path": kind,
-            "step": i,
-        }
-        for i, suffix in enumerate(numbered(0, steps, width=2))
-    ]
-    return Z, items
+    check_generate(n, prior, near)
+    mf = load(model)
+    plan = plan_generate(mf, n=n, temperature=temperature, near=near, seed=seed, prior=prior,
+                         numbering=_numbering(out, overwrite))
+    return _render(mf, plan, out, render=render, overwrite=overwrite, progress=progress)
 
 
 def interpolate_sounds(
     model: Path,
-    waypoints: Sequence[str],
+    waypoints: list[str],
     out: Path,
     *,
     steps: int = 8,
@@ -272,28 +135,9 @@ def interpolate_sounds(
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """``steps`` sounds along one continuous path through the waypoints (slerp, White 2016)."""
-    steps, seed = check_sounds(steps, "steps", low=2), _seed(seed)
-    mf = _load(model)
-    points = [resolve_sound(mf, w) for w in waypoints]
-    Z, items = _path_items(points, steps, path, seed)
-    request = {
-        "command": "interpolate",
-        "waypoints": list(waypoints),
-        "steps": steps,
-        "path": path,
-        "seed": seed,
-    }
-    return _render(
-        mf,
-        Z,
-        items,
-        out,
-        seed=seed,
-        render=render,
-        overwrite=overwrite,
-        progress=progress,
-        summary=request,
-    )
+    mf = load(model)
+    plan = plan_interpolate(mf, waypoints, steps=steps, path=path, seed=seed)
+    return _render(mf, plan, out, render=render, overwrite=overwrite, progress=progress)
 
 
 def read_jobs_file(path: Path) -> list[dict[str, Any]]:
@@ -377,19 +221,19 @@ def interpolate_jobs(
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """Many interpolations from one jobs file, rendered into one folder with one manifest."""
-    jobs, seed = read_jobs_file(jobs_file), _seed(seed)
+    jobs, seed = read_jobs_file(jobs_file), pick_seed(seed)
     check_sounds(steps, "steps", low=2)
     total = sum(job.get("steps", steps) for job in jobs)
     if total > MAX_SOUNDS:
         raise ShotsmithError(f"{jobs_file}: {len(jobs)} jobs of {total} sounds in all; at most "
                              f"{MAX_SOUNDS} per run (split the file)")
-    mf = _load(model)
+    mf = load(model)
     codes, items = [], []
     for job in jobs:
         try:
             points = [resolve_sound(mf, s) for s in job["sounds"]]
             label = job.get("label") or None
-            Z, its = _path_items(
+            Z, its = path_items(
                 points, job.get("steps", steps), job.get("path", path), seed + len(items), label
             )
         except ShotsmithError as exc:
@@ -402,17 +246,8 @@ def interpolate_jobs(
         "jobs": len(jobs),
         "seed": seed,
     }
-    return _render(
-        mf,
-        np.concatenate(codes),
-        items,
-        out,
-        seed=seed,
-        render=render,
-        overwrite=overwrite,
-        progress=progress,
-        summary=request,
-    )
+    plan = Plan(np.concatenate(codes), items, request, seed)
+    return _render(mf, plan, out, render=render, overwrite=overwrite, progress=progress)
 
 
 def vary_sound(
@@ -428,34 +263,8 @@ def vary_sound(
     progress: Callable[..., None] | None = None,
 ) -> dict[str, Any]:
     """``n`` variations around one sound's posterior; ``amount=0`` gives its reconstruction."""
-    n, seed = check_sounds(n, "n"), _seed(seed)
-    amount = latent.check_spread(amount, "amount")
-    mf = _load(model)
-    point = resolve_sound(mf, sound)
-    Z = latent.variations(point.mu, point.logvar, n, amount=amount, rng=np.random.default_rng(seed))
-    src = [point.source.get("clip") or point.source.get("file")]
-    label = f"vary-{point.label}"
-    start = 0 if overwrite else next_number(out, label)  # add after what is there
-    items = [
-        {
-            "stem": label,
-            "suffix": suffix,
-            "kind": "vary",
-            "seed": seed + i,
-            "sources": src,
-            "amount": amount,
-        }
-        for i, suffix in enumerate(numbered(start, n, width=2))
-    ]
-    request = {"command": "vary", "sound": sound, "n": n, "amount": amount, "seed": seed}
-    return _render(
-        mf,
-        Z,
-        items,
-        out,
-        seed=seed,
-        render=render,
-        overwrite=overwrite,
-        progress=progress,
-        summary=request,
-    )
+    check_count(n)
+    mf = load(model)
+    plan = plan_vary(mf, sound, n=n, amount=amount, seed=seed,
+                     numbering=_numbering(out, overwrite))
+    return _render(mf, plan, out, render=render, overwrite=overwrite, progress=progress)

@@ -293,11 +293,11 @@ def inspect_model(
     health : dict, JSON-able; the content of ``health.json``
     """
     from pipeline import files, report
-    from pipeline.create import check_seed
     from pipeline.latent_health import health_report
     from pipeline.modelfile import load_model_file
     from pipeline.outputs import refuse_library
     from pipeline.sampler import sample_mixture
+    from pipeline.sounds import check_seed
 
     out_dir, seed = Path(out_dir), 0 if seed is None else check_seed(seed)
     _check_outputs(out_dir, overwrite)

@@ -159,8 +159,12 @@ def model_payload(
     split: dict[str, np.ndarray],
     bank: dict[str, Any],
     samplers: Samplers | None = None,
+    clip_paths: list[str] | None = None,
 ) -> dict[str, Any]:
     """The dict that :func:`save_atomic` writes as a model file.
+
+    ``clip_paths``: each clip's path relative to the library (``kick/a.wav``), so a clip
+    can be named by it; files written before it was stored have none.
 
     ``samplers`` (the mixtures fitted to ``mu``) is written when training ends; a file
     saved mid-training has none, and :meth:`ModelFile.samplers` fits them on load.
@@ -176,6 +180,7 @@ def model_payload(
         "categories": sorted({c for c in clip_categories if c}),
         "clip_names": list(clip_names),
         "clip_categories": list(clip_categories),
+        "clip_paths": list(clip_paths or []),
         "mu": torch.as_tensor(np.asarray(mu, dtype=np.float32)),
         "logvar": torch.as_tensor(np.asarray(logvar, dtype=np.float32)),
         "split": {k: torch.as_tensor(np.asarray(v, dtype=np.int64)) for k, v in split.items()},
@@ -237,6 +242,7 @@ class ModelFile:
     bank: dict[str, Any]
     model: ShotVAE = field(repr=False)
     stored_samplers: Samplers | None = field(default=None, repr=False)
+    clip_paths: list[str] = field(default_factory=list)  # relative to the library; may be empty
 
     @property
     def audio(self) -> AudioSpec:
@@ -246,7 +252,7 @@ class ModelFile:
         """The mixtures fitted to the clips' codes (stored, or fitted now: a file saved
         before training ended holds none; the fit is seeded, so both give the same)."""
         if self.stored_samplers is None:
-            self.stored_samplers = fit_samplers(self.mu, self.clip_categories, seed=0)
+            self.stored_samplers = fit_samplers(self.mu, self.clip_categories)
         return self.stored_samplers
 
     @property
@@ -375,4 +381,12 @@ def load_model_file(path: str | Path) -> ModelFile:
         bank=dict(p.get("bank", {})),
         model=model,
         stored_samplers=_read_samplers(path, p.get("sampler"), d, list(p["categories"])),
+        clip_paths=_clip_paths(p.get("clip_paths"), len(names)),
     )
+
+
+def _clip_paths(raw: Any, n: int) -> list[str]:
+    """The stored relative paths when there is one string per clip, else none (older files)."""
+    if isinstance(raw, list) and len(raw) == n and all(isinstance(x, str) for x in raw):
+        return list(raw)
+    return []

@@ -16,8 +16,12 @@ for speed (measured on a 2-core CPU, see tests/benchmarks/bench_phase.py):
   back to the kernel and page-faulted in again on every iteration;
 * chunks run on a small thread pool (numpy and scipy.fft release the GIL), which
   also spreads the element-wise work over the cores, not only the FFTs;
-* overlap-add is ``n_fft / hop_length`` strided slice additions, not a loop over
-  frames.
+* the element-wise work between the transforms is two compiled (numba) passes:
+  the overlap-add with the synthesis window and the LSEE gain, and the magnitude
+  projection with the momentum step. Each reads and writes every value once where
+  numpy needed five to seven array passes. The overlap-add sums in the order the
+  numpy version used (the same bits); the magnitude is ``sqrt(re^2 + im^2)`` in
+  float32, within an ulp or two of numpy's ``abs``.
 """
 
 from __future__ import annotations
@@ -27,6 +31,7 @@ import warnings
 from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
 
+import numba
 import numpy as np
 import scipy.fft
 
@@ -61,6 +66,63 @@ def random_phase(
         seeds = seed[start : start + count]
         u = np.stack([np.random.default_rng(int(s)).random((n_bins, n_frames)) for s in seeds])
     return 2.0 * np.pi * u
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _overlap_add(frames, w, gain, y, hop):  # pragma: no cover - compiled
+    """``y[c] = gain * sum_t w * frames[c, t]`` placed at ``t * hop`` (the ISTFT's sum);
+    ``frames`` is windowed in place.
+
+    Output block ``j`` adds frame ``j`` (its first hop), then ``j - 1`` (its second)...,
+    as the strided numpy additions did, so float32 rounding is the same. Windowing in
+    a pass of its own lets both loops vectorise (3x faster than one fused loop).
+    """
+    b, T, n_fft = frames.shape
+    R = n_fft // hop
+    acc = np.empty(hop, np.float32)
+    for c in range(b):
+        for t in range(T):
+            fr = frames[c, t]
+            for n in range(n_fft):
+                fr[n] *= w[n]
+        for j in range(T - 1 + R):
+            acc[:] = 0.0
+            for r in range(R):
+                t = j - r
+                if 0 <= t < T:
+                    fr = frames[c, t, r * hop : (r + 1) * hop]
+                    for n in range(hop):
+                        acc[n] += fr[n]
+            o = j * hop
+            for n in range(hop):
+                y[c, o + n] = acc[n] * gain[o + n]
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _project(C, S, prev, beta, eps, F, track):  # pragma: no cover - compiled
+    """In place: ``t = S exp(i angle C)``; with momentum (``prev`` not empty)
+    ``C = t - beta prev`` and ``prev = t``, else ``C = t``; ``F = |C|`` first if ``track``.
+
+    Complex values are read as float32 pairs, and ``error_model="numpy"`` drops
+    Python's zero-division check: both are needed for the loop to vectorise (4x).
+    """
+    c = C.view(np.float32).reshape(-1)
+    p = prev.view(np.float32).reshape(-1)
+    s, f = S.reshape(-1), F.reshape(-1)
+    fast = p.size > 0
+    for i in range(s.size):
+        re, im = c[2 * i], c[2 * i + 1]
+        a = np.sqrt(re * re + im * im)
+        if track:
+            f[i] = a
+        g = s[i] / (a + eps)
+        tr, ti = re * g, im * g
+        if fast:
+            c[2 * i] = tr - beta * p[2 * i]
+            c[2 * i + 1] = ti - beta * p[2 * i + 1]
+            p[2 * i], p[2 * i + 1] = tr, ti
+        else:
+            c[2 * i], c[2 * i + 1] = tr, ti
 
 
 class _Plan:
@@ -98,7 +160,6 @@ class _Chunk:
         self.plan, self.S = plan, S_t
         self.F = np.empty(S_t.shape, np.float32)
         self.y = np.zeros((b, plan.padded), np.float32)
-        self.blocks = self.y.reshape(b, -1, plan.hop)
         stride = self.y.strides[-1]
         self.view = np.lib.stride_tricks.as_strided(
             self.y, (b, plan.n_frames, plan.n_fft), (self.y.strides[0], plan.hop * stride, stride),
@@ -109,14 +170,7 @@ class _Chunk:
         """``spectra.istft`` into ``self.y`` (padded); returns the frame buffer it used."""
         p = self.plan
         frames = scipy.fft.irfft(C, n=p.n_fft, axis=-1, overwrite_x=True, workers=1)
-        frames *= p.w_synthesis
-        parts = frames.reshape(frames.shape[0], p.n_frames, p.overlap, p.hop)
-        T = p.n_frames
-        self.blocks[:, :T] = parts[:, :, 0]
-        self.blocks[:, T:] = 0.0
-        for r in range(1, p.overlap):
-            self.blocks[:, r : r + T] += parts[:, :, r]
-        self.y *= p.gain
+        _overlap_add(frames, p.w_synthesis, p.gain, self.y, p.hop)
         return frames
 
     def stft(self, frames: np.ndarray) -> np.ndarray:
@@ -137,24 +191,19 @@ class _Chunk:
         p, S, F = self.plan, self.S, self.F
         trace = np.empty((S.shape[0], n_iter + 1)) if track else None
         tmp = np.empty_like(F) if track else None
+        # Perraudin et al. 2013: c = t_n + a (t_n - t_{n-1}). The next projection uses only
+        # the phase of c, so c / (1 + a) = t_n - a / (1 + a) t_{n-1} serves.
         beta = np.float32(momentum / (1.0 + momentum))
-        prev = C.copy() if momentum > 0 else None  # t_0: the initial estimate (as ltfat gla.m)
+        fast = momentum > 0
+        # t_0: the initial estimate (as ltfat gla.m)
+        prev = C.copy() if fast else np.empty(0, np.complex64)
         for i in range(n_iter):
             C = self.stft(self.istft(C))  # c = STFT(ISTFT(c))
-            np.abs(C, out=F)
+            # |c| + eps: a no-op for |c| above 1e-23; then t_n = S exp(i angle(c)) and the step
+            _project(C, S, prev, beta, _EPS, F, track)
             if track:  # iterates after the first are stored divided by (1 + a)
-                trace[:, i] = self.sc(F, tmp, 1.0 + momentum if i and prev is not None else 1.0)
-            np.add(F, _EPS, out=F)  # 6x faster than np.maximum; a no-op for |c| above 1e-23
-            np.divide(S, F, out=F)
-            np.multiply(C, F, out=C)  # t_n = S exp(i angle(c))
-            if prev is not None:
-                # Perraudin et al. 2013: c = t_n + a (t_n - t_{n-1}). The next projection uses
-                # only the phase of c, so c / (1 + a) = t_n - a / (1 + a) t_{n-1} serves,
-                # in two in-place passes.
-                prev *= -beta
-                prev += C
-                C, prev = prev, C  # prev holds t_n
-        if prev is not None:
+                trace[:, i] = self.sc(F, tmp, 1.0 + momentum if i and fast else 1.0)
+        if fast:
             C = prev  # output the last magnitude-true estimate t_n, not the extrapolation
         self.istft(C)
         y = self.y[:, p.n_fft // 2 : p.n_fft // 2 + p.length].copy()

@@ -250,7 +250,7 @@ HISTORY_KEYS = {
 
 def plot_training(history: Sequence[dict[str, Any]], path: Path, *,
                   best_epoch: int | None = None, title: str | None = None) -> Path:
-    """Training and validation loss, reconstruction and KL parts per epoch.
+    """Training and validation loss, reconstruction and KL parts per epoch, as a PNG.
 
     Parameters
     ----------
@@ -260,14 +260,46 @@ def plot_training(history: Sequence[dict[str, Any]], path: Path, *,
     path : Path of the PNG (``TRAINING_SIZE`` pixels)
     best_epoch : int, optional. The epoch whose weights were kept (a vertical line)
     """
-    from matplotlib.ticker import FuncFormatter, MaxNLocator
+    return _save(training_figure(history, best_epoch=best_epoch, title=title), path)
+
+
+# minor ticks labelled on a log axis, by the decades it spans: every label stays apart
+_MINOR_LABELS = ((0.6, (2, 3, 5)), (2.5, (2, 5)))
+
+
+def _log_tick_formatter(ax, *, minor: bool):
+    """Plain numbers (``0.2``, not ``2x10^-1``); minor ticks only at the mantissas
+    :data:`_MINOR_LABELS` allows for the axis's span, so labels never print over each other."""
+    import math
+
+    from matplotlib.ticker import FuncFormatter
+
+    def fmt(v: float, _pos: int) -> str:
+        if not minor:
+            return f"{v:g}"
+        lo, hi = ax.get_ylim()
+        span = math.log10(hi / lo) if 0 < lo < hi else math.inf
+        keep = next((m for limit, m in _MINOR_LABELS if span < limit), ())
+        mantissa = v / 10.0 ** math.floor(math.log10(v) + 1e-9)
+        return f"{v:g}" if any(abs(mantissa - m) < 1e-6 for m in keep) else ""
+
+    return FuncFormatter(fmt)
+
+
+def training_figure(history: Sequence[dict[str, Any]], *, best_epoch: int | None = None,
+                    title: str | None = None):
+    """The figure :func:`plot_training` saves (a matplotlib ``Figure`` on the Agg canvas).
+
+    The legends sit below the panels, outside the plotting area, so no curve is covered.
+    """
+    from matplotlib.ticker import MaxNLocator
 
     history = list(history or [])
     fig = _figure(TRAINING_SIZE)
     fig.suptitle(title or f"Training: {len(history)} epochs", fontsize=12)
     epochs = _series(history, "epoch")
     epochs = np.where(np.isnan(epochs), np.arange(1, len(history) + 1), epochs)
-    axes = [fig.add_axes((0.05 + 0.33 * i, 0.13, 0.25, 0.72)) for i in range(3)]
+    axes = [fig.add_axes((0.05 + 0.33 * i, 0.25, 0.25, 0.6)) for i in range(3)]
     for ax, (name, (tkeys, vkeys)) in zip(axes, HISTORY_KEYS.items(), strict=True):
         drawn, values = False, []
         for keys, label, style in ((tkeys, "training", "-"), (vkeys, "validation", "--")):
@@ -281,9 +313,8 @@ def plot_training(history: Sequence[dict[str, Any]], path: Path, *,
         v = np.concatenate(values) if values else np.zeros(0)
         if v.size and v.min() > 0 and v.max() > 3 * v.min():  # early epochs would flatten the rest
             ax.set_yscale("log")
-            plain = FuncFormatter(lambda v, _: f"{v:g}")
-            ax.yaxis.set_major_formatter(plain)
-            ax.yaxis.set_minor_formatter(plain)
+            ax.yaxis.set_major_formatter(_log_tick_formatter(ax, minor=False))
+            ax.yaxis.set_minor_formatter(_log_tick_formatter(ax, minor=True))
         if best_epoch is not None and drawn:
             ax.axvline(best_epoch, color="0.3", lw=0.8, alpha=0.6,
                        label="kept epoch" if name == "loss" else None)
@@ -294,18 +325,20 @@ def plot_training(history: Sequence[dict[str, Any]], path: Path, *,
                 tw = ax.twinx()
                 (line,) = tw.plot(epochs, w, ":", color="0.4", label="KL weight")
                 tw.set_ylabel("KL weight", fontsize=8, color="0.4")
-                tw.set_ylim(0, 1.3 * max(float(np.nanmax(w)), 1e-3))  # room for the legend
+                tw.set_ylim(0, 1.05 * max(float(np.nanmax(w)), 1e-3))
                 tw.tick_params(labelsize=7, colors="0.4")
                 handles, labels = handles + [line], labels + ["KL weight"]
         ax.set_title(name, fontsize=10)
-        ax.set_xlabel("epoch")
+        ax.set_xlabel("epoch", fontsize=9)
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         ax.grid(True, alpha=0.25)
         ax.tick_params(which="both", labelsize=8)
-        if drawn:
-            ax.legend(handles, labels, fontsize=8, frameon=False, loc="upper right")
+        if drawn:  # below the "epoch" label, outside the plotting area
+            ax.legend(handles, labels, fontsize=8, frameon=False, loc="upper center",
+                      bbox_to_anchor=(0.5, -0.17), ncol=len(handles), handlelength=1.6,
+                      columnspacing=1.0)
         else:
             ax.text(0.5, 0.5, "not recorded", ha="center", va="center",
                     transform=ax.transAxes, color="0.4")
     axes[0].set_ylabel("per-clip loss")
-    return _save(fig, path)
+    return fig

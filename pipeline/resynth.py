@@ -21,7 +21,7 @@ import numpy as np
 from pipeline.config import Settings
 from pipeline.decode import category_of, check_jobs, clip_names, decode_files, plan_decode
 from pipeline.errors import OutputError, ShotsmithError
-from pipeline.render import render_spectra
+from pipeline.render import loudness_shortfall, render_spectra
 from pipeline.scan import is_inside, scan_folder, source_folder
 
 __all__ = ["resynth_folder"]
@@ -119,6 +119,7 @@ def resynth_folder(
         "failed": decoded - len(written),  # non-finite output, listed under "failed"
         "median_sc_db": round(float(np.median(sc)), 2) if sc else None,
         "worst_sc_db": round(float(np.max(sc)), 2) if sc else None,
+        "loudness_unmet": loudness_shortfall(written, render),
         "seconds": round(time.perf_counter() - t0, 3),
         "out": str(out),
         "manifest": str(out / "manifest.json"),

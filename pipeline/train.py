@@ -228,12 +228,13 @@ class RunFiles:
         if not self.enabled:
             return
         cats = [c.get("category") for c in self.bank.clips]
-        samplers = fit_samplers(kept.mu, cats, seed=0) if final else None
+        samplers = fit_samplers(kept.mu, cats) if final else None
         save_atomic(model_payload(
             settings=self.settings, state_dict=kept.weights, history=st.history, best=st.best,
             clip_names=self.bank.names, clip_categories=cats, mu=kept.mu, logvar=kept.logvar,
             split={"train": st.train_rows, "val": st.val_rows}, bank=self.bank_info,
-            samplers=samplers), self.model_path)
+            samplers=samplers, clip_paths=[str(c.get("path", "")) for c in self.bank.clips]),
+            self.model_path)
 
     def save_checkpoint(self, st: TrainState, model: torch.nn.Module,
                         opt: torch.optim.Optimizer, kept: Kept | None) -> None:

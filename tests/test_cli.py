@@ -127,3 +127,52 @@ def test_train_refuses_then_overwrites_an_existing_model(tmp_path):
     done = runner.invoke(app, [*args, "--overwrite", "--json"])
     assert done.exit_code == 0, done.output
     assert model.read_bytes() != b"an earlier model"
+
+
+def test_help_shows_flags_without_a_value_and_every_option_has_help():
+    import re
+
+    import typer.main
+
+    commands = typer.main.get_command(app).commands
+    assert "info" in commands
+    for name, command in commands.items():
+        result = runner.invoke(app, [name, "--help"], terminal_width=100)
+        assert result.exit_code == 0, (name, result.output)
+        assert "<bool>" not in result.output, name  # a flag takes no value
+        for param in command.params:
+            if param.param_type_name == "option":
+                assert param.help, f"{name} {param.opts[0]} has no help"
+        json_line = [line for line in result.output.splitlines() if "--json" in line]
+        assert all(re.match(r"^\s+--json\s{2,}\S", line) for line in json_line), json_line
+
+
+def test_a_value_after_a_flag_is_a_usage_error(tmp_path):
+    # "--json true" is not how a flag is given: exit 2 with the usage line, nothing run
+    result = runner.invoke(app, ["ingest", str(tmp_path), "--bank", str(tmp_path / "b"),
+                                 "--json", "true"])
+    assert result.exit_code == 2 and "unexpected extra argument" in result.output
+    assert not (tmp_path / "b").exists()
+
+
+def test_interpolate_needs_out_like_every_command_that_writes(tmp_path):
+    for args in (["interpolate", str(tmp_path / "m.pt"), "a", "b"],
+                 ["generate", str(tmp_path / "m.pt")],
+                 ["vary", str(tmp_path / "m.pt"), "a"]):
+        result = runner.invoke(app, args)
+        assert result.exit_code == 2 and "--out" in result.output, args
+
+
+def test_progress_puts_each_time_before_its_word():
+    import io
+    import re
+
+    from pipeline.progress import progress_bar
+
+    buf = io.StringIO()
+    with progress_bar("train", file=buf) as update:
+        update(1, 4, loss=0.5)
+        update(4, 4, loss=0.25)
+    text = buf.getvalue()
+    assert re.search(r"\d+:\d\d:\d\d elapsed, [-\d]+:[-\d]{2}:[-\d]{2} left", text), text
+    assert "loss 0.25" in text

@@ -281,3 +281,23 @@ def test_render_settings_are_typed(model, tmp_path):
         generate_sounds(model, tmp_path / "g", n=1, render={"iterations": 1})
     s = generate_sounds(model, tmp_path / "g", n=1, seed=0, render=RenderSpec(iterations=2))
     assert load_manifest(Path(s["manifest"]).parent)["render"]["iterations"] == 2
+
+
+def test_a_loudness_target_the_ceiling_forbids_is_said_on_the_console(model, tmp_path):
+    # -3 LUFS under a -6 dBTP ceiling: no decaying one-shot gets there (its true peak would
+    # have to sit far above its integrated loudness, BS.1770)
+    args = ["generate", str(model), "--out", str(tmp_path / "loud"), "-n", "3", "--seed", "2",
+            "--iterations", "8", "--loudness", "-3", "--peak-db", "-6"]
+    result = CliRunner().invoke(app, args)
+    assert result.exit_code == 0, result.output
+    manifest = load_manifest(tmp_path / "loud")
+    levels = {it["file"]: it["loudness_lufs"] for it in manifest["items"]}
+    worst = min(levels, key=levels.get)
+    line = result.output.strip().splitlines()[-1]
+    assert line.startswith("3 of 3 sounds could not reach -3 LUFS under the -6 dBTP ceiling")
+    assert f"the furthest, {worst}, is at {levels[worst]:.1f} LUFS" in line
+    more = CliRunner().invoke(app, [*args, "--json"])
+    short = json.loads(more.output)["loudness_unmet"]
+    assert short["count"] == 3 and short["short_by_lu"] > 0
+    met = CliRunner().invoke(app, [*args[:-4], "--loudness", "-30", "--json"])
+    assert json.loads(met.output)["loudness_unmet"] is None

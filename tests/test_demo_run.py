@@ -13,6 +13,8 @@ import pipeline.demo_run as demo_run
 from pipeline.cli import app
 from pipeline.errors import OutputError
 
+pytestmark = pytest.mark.slow  # the whole demo job, twice: ingest, train, render, inspect
+
 
 def test_demo_runs_end_to_end_and_synthesizes_a_missing_kit(tmp_path, monkeypatch):
     monkeypatch.setattr(demo_run, "find_kit", lambda: None)  # an installed package, no repo

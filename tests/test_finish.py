@@ -9,12 +9,9 @@ import scipy.signal
 from pipeline import finish
 from pipeline.config import RenderSpec
 
+RNG_SEED = 177042  # conftest's rng fixture: the draws these tests were written with
+
 SR = 48000
-
-
-@pytest.fixture
-def rng():
-    return np.random.default_rng(177042)
 
 
 def _db(x):
@@ -22,7 +19,7 @@ def _db(x):
 
 
 def test_true_peak_of_a_quarter_rate_sine_at_45_degrees_is_full_scale():
-    # BS.1770-4 Annex 2 (references.md section 13): sample peak 0.707 (-3.01 dBFS),
+    # BS.1770-4 Annex 2 (tests/references.md section 13): sample peak 0.707 (-3.01 dBFS),
     # true peak 1.0 (0 dBTP), which 4x oversampling with scipy's resample_poly also reads
     n = np.arange(SR)
     y = np.sin(2 * np.pi * n / 4 + np.pi / 4)

@@ -273,6 +273,7 @@ def test_a_model_without_validation_split_uses_every_clip():
     assert idx.tolist() == [3, 4] and source == "validation split"
 
 
+@pytest.mark.slow
 def test_cli_prints_the_table_and_json(trained, tmp_path):
     model, bank = trained
     runner = CliRunner()

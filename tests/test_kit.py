@@ -151,7 +151,7 @@ def test_all_sounds_with_layers_and_round_robins(kit, tmp_path):
 
 
 def test_gm_layout_uses_the_gm1_percussion_keys(kit, tmp_path):
-    # General MIDI Level 1 percussion key map (MMA 1991; references.md section 13):
+    # General MIDI Level 1 percussion key map (MMA 1991; tests/references.md section 13):
     # 36 Bass Drum 1, 38 Acoustic Snare, 42 Closed Hi-Hat
     assert GM1_PERCUSSION[36] == "Bass Drum 1" and GM1_PERCUSSION[38] == "Acoustic Snare"
     assert GM1_PERCUSSION[42] == "Closed Hi-Hat" and GM1_PERCUSSION[46] == "Open Hi-Hat"

@@ -24,7 +24,7 @@ def _unit(rng: np.random.Generator, n: int, d: int) -> np.ndarray:
 
 def test_slerp_matches_scipy_quaternion_slerp():
     # Reference: scipy.spatial.transform.Slerp (constant angular velocity on the
-    # shortest arc; quaternions scalar-last), as in references.md section 8.
+    # shortest arc; quaternions scalar-last), as in tests/references.md section 8.
     rng = np.random.default_rng(1)
     t = np.linspace(0.0, 1.0, 9)
     for _ in range(40):

@@ -38,7 +38,7 @@ def test_short_clips_are_measured_padded_to_one_block(seconds, amp):
     # ITU-R BS.1770-4 Annex 1: a full-scale 997 Hz sine reads -3.01 LKFS; one 400 ms block
     # holding d seconds of it at amplitude A has mean square (A^2/2)(d/0.4), so the padded
     # clip reads -3.01 + 20 log10 A + 10 log10(d / 0.4). pyloudnorm reads the anchor as
-    # -3.05 (references.md section 1), and the K-filter rings at the edges: 0.1 LU tolerance.
+    # -3.05 (tests/references.md section 1), and the K-filter rings at the edges: 0.1 LU tolerance.
     lufs, padded = padded_loudness(_sine(seconds, amp), SR)
     expected = -3.01 + 20 * math.log10(amp) + 10 * math.log10(seconds / 0.4)
     assert padded

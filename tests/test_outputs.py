@@ -26,11 +26,6 @@ DEAD_PID = int(Path("/proc/sys/kernel/pid_max").read_text()) + 1 if Path(
     "/proc/sys/kernel/pid_max").exists() else 2**22 + 1  # no such process
 
 
-@pytest.fixture
-def rng():
-    return np.random.default_rng(1770)
-
-
 def _full(*a, **k):
     raise OSError(errno.ENOSPC, "No space left on device")
 
@@ -42,7 +37,7 @@ def test_pcm_24_round_trip_within_one_lsb(tmp_path, rng):
     y = 0.5 * np.sin(2 * np.pi * 1000 * np.arange(SR) / SR) + 0.01 * rng.standard_normal(SR)
     path = outputs.write_wav(tmp_path / "x.wav", y, SR, bit_depth="24")
     back, sr = sf.read(path, dtype="float64")
-    # soundfile / libsndfile SF_FORMAT_PCM_24 (references.md section 10): error <= 2^-23
+    # soundfile / libsndfile SF_FORMAT_PCM_24 (tests/references.md section 10): error <= 2^-23
     assert sr == SR and sf.info(path).subtype == "PCM_24"
     assert np.max(np.abs(back - y)) <= 2**-23
     out, _ = render.finish_audio(y, SR, RenderSpec(bit_depth="24"))

@@ -9,12 +9,9 @@ import pytest
 from pipeline import phase, spectra
 from pipeline.errors import ParameterError
 
+RNG_SEED = 1984  # conftest's rng fixture: the draws these tests were written with
+
 SR, N_FFT, HOP, N = 16000, 512, 128, 8000  # the tiny preset's STFT
-
-
-@pytest.fixture
-def rng():
-    return np.random.default_rng(1984)
 
 
 def _harmonic(n=N, f0=220.0, sr=SR):
@@ -75,7 +72,7 @@ def test_zero_iterations_zero_phase_is_the_istft_of_the_magnitudes(rng):
 
 @pytest.mark.parametrize("momentum", [0.0, 0.5, 0.99])
 def test_matches_a_direct_transcription_of_the_fast_griffin_lim_update(rng, momentum):
-    # Perraudin et al. 2013 as in ltfat's gla.m (references.md section 4), written out with
+    # Perraudin et al. 2013 as in ltfat's gla.m (tests/references.md section 4), written out with
     # the reference transforms: c = STFT(ISTFT(c)); t_n = S e^{i angle c};
     # c = t_n + a (t_n - t_{n-1}), t_0 = c_0; output ISTFT(t_N)
     S = _mag(_hits(rng, 2))
@@ -100,7 +97,7 @@ def test_matches_a_direct_transcription_of_the_fast_griffin_lim_update(rng, mome
 
 def test_plain_griffin_lim_never_increases_the_spectral_distance():
     # Griffin & Lim 1984: the distance to the target magnitudes is non-increasing for
-    # plain GLA (momentum 0). references.md section 4 (the paper's property is [M]).
+    # plain GLA (momentum 0). tests/references.md section 4 (the paper's property is [M]).
     S = _mag(_harmonic()).astype(np.float32)
     _, sc = phase.griffin_lim_trace(S, n_fft=N_FFT, hop_length=HOP, length=N, n_iter=60,
                                     momentum=0.0, seed=7)
@@ -135,8 +132,8 @@ def test_reaches_librosa_griffinlim_sc_with_matched_settings(rng, momentum):
     ])
     ours, theirs = _sc_db(S, y), _sc_db(S, y_lib)
     assert np.all(ours <= theirs + 0.01), (ours, theirs)
-    # librosa's update is a reparameterisation of Perraudin et al.'s (references.md section 4):
-    # the iterates agree up to float32 rounding
+    # librosa's update is a reparameterisation of Perraudin et al.'s
+    # (tests/references.md section 4): the iterates agree up to float32 rounding
     assert np.max(np.abs(y - y_lib)) < 1e-3 * np.max(np.abs(y_lib))
 
 
@@ -152,7 +149,7 @@ def test_momentum_beats_plain_griffin_lim_after_100_iterations():
 def test_momentum_warning_and_error():
     S = np.ones((257, 63), np.float32)
     kw = dict(n_fft=N_FFT, hop_length=HOP, length=N, n_iter=1)
-    # librosa.griffinlim's behaviour (references.md section 4): warn above 1, reject below 0
+    # librosa.griffinlim's behaviour (tests/references.md section 4): warn above 1, reject below 0
     with pytest.warns(UserWarning, match="momentum"):
         phase.griffin_lim(S, momentum=1.5, **kw)
     with pytest.raises(ParameterError, match="momentum"):

@@ -7,12 +7,9 @@ import pytest
 
 from pipeline import quality
 
+RNG_SEED = 20261202  # conftest's rng fixture: the draws these tests were written with
+
 SR = quality.DESCRIPTOR_SR
-
-
-@pytest.fixture
-def rng():
-    return np.random.default_rng(20261202)
 
 
 def _sqrtm_psd(C: np.ndarray) -> np.ndarray:

@@ -79,11 +79,12 @@ def test_every_real_file_is_accepted_or_listed_with_a_reason(ingested):
         assert all(c["path"].endswith(".oga") for c in bank.clips)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", sorted(COLLECTIONS))
 def test_real_sounds_resynthesize_to_a_stated_spectral_convergence(name, tmp_path):
     """Resynthesis (front end -> spectra -> fast Griffin-Lim, 64 iterations -> WAV) of real sounds.
 
-    Spectral convergence in dB as ltfat's ``magnitudeerrdb`` (references.md section 5),
+    Spectral convergence in dB as ltfat's ``magnitudeerrdb`` (tests/references.md section 5),
     of each reconstruction against its target magnitudes. Measured here with the drums
     preset: median -29.7 dB (freedesktop) and -31.7 dB (sound-icons), worst -18.3 and
     -21.2 dB; the random initial phase alone scores about -4 dB. The bar, median better

@@ -19,11 +19,6 @@ SR = 48000
 TINY = load_settings("tiny")
 
 
-@pytest.fixture
-def rng():
-    return np.random.default_rng(1770)
-
-
 def _sine(f=997.0, seconds=1.0, amp=1.0, sr=SR):
     return amp * np.sin(2 * np.pi * f * np.arange(int(seconds * sr)) / sr)
 
@@ -36,7 +31,7 @@ def test_997_hz_full_scale_sine_reads_minus_3_01_lufs():
     y = _sine(seconds=10.0)
     got = render.integrated_loudness(y, SR)
     # BS.1770-4 Annex 1: a 0 dBFS 997 Hz sine reads -3.01 LKFS; pyloudnorm reads -3.05
-    # (its K-filter is built from cookbook biquads; references.md section 1)
+    # (its K-filter is built from cookbook biquads; tests/references.md section 1)
     assert got == pytest.approx(-3.01, abs=0.05)
     assert got == pytest.approx(pyloudnorm.Meter(SR).integrated_loudness(y), abs=1e-9)
     assert render.integrated_loudness(0.1 * y, SR) == pytest.approx(-23.05, abs=0.01)
@@ -50,7 +45,7 @@ def test_loudness_targets_land_within_0_1_lu_under_the_ceiling(rng, target, bit_
     spec = RenderSpec(loudness=target, bit_depth=bit_depth, peak_db=-1.0)
     out, info = render.finish_audio(y, SR, spec, rng=rng)
     measured = pyloudnorm.Meter(SR).integrated_loudness(out.astype(np.float64))
-    # EBU R 128 / AES TD1008 targets; the tolerance is the one references.md section 2 asks
+    # EBU R 128 / AES TD1008 targets; the tolerance is the one tests/references.md section 2 asks
     assert measured == pytest.approx(target, abs=0.1), info
     assert np.max(np.abs(out)) <= _ceiling(-1.0)
     assert info["normalisation"] == f"loudness {target:g} LUFS"
@@ -233,3 +228,37 @@ def test_items_without_a_stem_get_numbered_names(tmp_path, rng):
                                   RenderSpec(iterations=1), seed=7)
     assert [it["file"] for it in items] == ["sound-0000.wav", "sound-0001.wav"]
     assert [it["seed"] for it in items] == [7, 8]
+
+
+# --- the session rate (render.output_rate) --------------------------------------------------
+
+
+def test_soxr_to_48_khz_keeps_a_1_khz_tone_within_one_bin():
+    # soxr (python-soxr, "HQ") as the resampler: the spectral peak of a 1 kHz tone resampled
+    # from 44.1 kHz to 48 kHz stays in the bin of 1 kHz (bin width 48000 / n)
+    from pipeline.frontend import resample
+
+    x = _sine(1000.0, seconds=0.5, amp=0.5, sr=44100)
+    y = resample(x, orig_sr=44100, target_sr=48000)
+    assert len(y) == 24000
+    spectrum = np.abs(np.fft.rfft(y * np.hanning(len(y))))
+    assert abs(np.argmax(spectrum) * 48000 / len(y) - 1000.0) <= 48000 / len(y)
+
+
+def test_output_rate_writes_at_the_session_rate_and_records_both_rates(tmp_path):
+    # a 1 kHz tone's spectrogram at the tiny preset's 16 kHz, rendered at 48 kHz: the WAV is
+    # at 48 kHz, as long as the clip, its tone at 1 kHz within one bin, and nothing above
+    # the analysis band (8 kHz) but resampling's own floor
+    audio = TINY.audio
+    t = np.arange(audio.n_samples) / audio.sample_rate
+    U = spectra.clip_to_unit(0.5 * np.sin(2 * np.pi * 1000.0 * t), audio)[None]
+    render.render_spectra([(U, [{"stem": "tone", "kind": "test"}])], tmp_path, audio,
+                          RenderSpec(iterations=16, output_rate=48000))
+    y, sr = sf.read(tmp_path / "tone.wav")
+    assert sr == 48000 and len(y) == round(audio.duration * 48000)
+    spectrum = np.abs(np.fft.rfft(y * np.hanning(len(y)))) ** 2
+    f = np.fft.rfftfreq(len(y), 1 / sr)
+    assert abs(f[np.argmax(spectrum)] - 1000.0) <= sr / len(y)
+    assert spectrum[f > 8500].sum() < 1e-6 * spectrum.sum()
+    m = load_manifest(tmp_path)
+    assert m["sample_rate"] == 16000 and m["output_rate"] == 48000

@@ -8,10 +8,7 @@ import pytest
 from pipeline import sampler
 from pipeline.errors import ParameterError
 
-
-@pytest.fixture
-def rng():
-    return np.random.default_rng(1977)
+RNG_SEED = 1977  # conftest's rng fixture: the draws these tests were written with
 
 
 def _mixture(rng: np.random.Generator, d: int = 4) -> sampler.Mixture:
@@ -84,7 +81,11 @@ def test_fit_samplers_per_category(rng):
     library, per = sampler.fit_samplers(mu, cats)
     assert set(per) == {"hat", "kick"}
     assert per["kick"].means.mean() < -3 and per["hat"].means.mean() > 3
-    assert library.n_components == 2
+    # the library's kernels: one at every code, the codes' covariance scaled by the bandwidth
+    np.testing.assert_array_equal(library.means, mu)
+    assert library.covs.shape == (1, 3, 3)
+    spread = np.trace(np.cov(mu.T, bias=True)) * sampler.LIBRARY_BANDWIDTH**2
+    assert np.trace(library.covs[0]) == pytest.approx(spread, rel=0.1)
 
 
 @pytest.mark.parametrize(("weights", "means", "covs", "match"), [

@@ -10,13 +10,10 @@ import scipy.signal
 from pipeline import spectra
 from pipeline.config import load_settings
 
+RNG_SEED = 20240611  # conftest's rng fixture: the draws these tests were written with
+
 PRESETS = ["tiny", "drums", "long"]
 STFTS = [(512, 128), (1024, 256), (2048, 512)]
-
-
-@pytest.fixture
-def rng():
-    return np.random.default_rng(20240611)
 
 
 def _signal(rng, n):
@@ -59,7 +56,8 @@ def test_bin_centred_sine_peaks_in_bin_k_at_0_db(k):
     assert np.all(np.argmax(mid, axis=0) == k)
     # the scale's promise: a full-scale bin-centred sine reads 1.0 = 0 dB
     np.testing.assert_allclose(mid[k], 1.0, atol=1e-6)
-    # unscaled, a periodic Hann gives A N / 4 (coherent gain 0.5; references.md, derived)
+    # unscaled, a periodic Hann gives A N / 4 (coherent gain 0.5;
+    # tests/references.md section 3, derived)
     np.testing.assert_allclose(mid[k] / spectra.stft_scale(n_fft), n_fft / 4, rtol=1e-6)
 
 
@@ -75,7 +73,7 @@ def test_window_and_hop_satisfy_cola_and_nola(preset):
     np.testing.assert_allclose(
         w, scipy.signal.get_window("hann", a.n_fft, fftbins=True), rtol=0, atol=4e-16
     )
-    # the pitfall references.md notes: a symmetric Hann window is not COLA here
+    # the pitfall tests/references.md section 3 notes: a symmetric Hann window is not COLA here
     assert not scipy.signal.check_COLA(scipy.signal.windows.hann(a.n_fft, sym=True),
                                        a.n_fft, overlap)
 
@@ -86,7 +84,7 @@ def test_istft_of_stft_round_trip(rng, n_fft, hop, n):
     y = rng.uniform(-1, 1, n)
     X = spectra.stft(y, n_fft=n_fft, hop_length=hop)
     y2 = spectra.istft(X, n_fft=n_fft, hop_length=hop, length=n)
-    assert np.max(np.abs(y2 - y)) < 1e-6  # references.md section 3 (LSEE inverse)
+    assert np.max(np.abs(y2 - y)) < 1e-6  # tests/references.md section 3 (LSEE inverse)
     # and librosa's inverse of our (rescaled) STFT gives the same signal
     ref = librosa.istft(X / spectra.stft_scale(n_fft), n_fft=n_fft, hop_length=hop,
                         window="hann", center=True, length=n)

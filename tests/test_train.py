@@ -17,7 +17,6 @@ from synthbank import (
     SMALL_AUDIO,
     make_bank,
     param_spectra,
-    small_bank,
     small_settings,
     write_spectra_bank,
 )
@@ -33,8 +32,8 @@ TESTS = Path(__file__).resolve().parent
 
 
 @pytest.fixture(scope="module")
-def bank(tmp_path_factory) -> Path:
-    return small_bank(tmp_path_factory.mktemp("bank") / "bank", n=48)
+def bank(small_banks) -> Path:
+    return small_banks(48)
 
 
 def weights(path: Path) -> dict[str, torch.Tensor]:
@@ -280,6 +279,7 @@ def _wait_for(proc: subprocess.Popen, line: str) -> None:
     raise AssertionError(f"child ended before {line!r} (rc {proc.wait()})")
 
 
+@pytest.mark.slow
 def test_sigkill_right_after_a_checkpoint_leaves_a_loadable_model(bank, tmp_path):
     model = tmp_path / "m.pt"
     proc = _child(bank, model)
@@ -299,6 +299,7 @@ def test_sigkill_right_after_a_checkpoint_leaves_a_loadable_model(bank, tmp_path
     assert sorted(p.name for p in tmp_path.iterdir()) == ["m.pt"]  # no temporaries left
 
 
+@pytest.mark.slow
 def test_ctrl_c_stops_saves_and_prints_the_resume_command(bank, tmp_path):
     model = tmp_path / "m.pt"
     proc = _child(bank, model)
