@@ -19,13 +19,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
+from synthbank import small_bank, small_settings
 
 from pipeline.dataset import EpochSampler, clip_noise
 from pipeline.distributed import ranks_from_env
 from pipeline.errors import TrainingError
 from pipeline.modelfile import load_model_file
 from pipeline.train import train_model
-from synthbank import small_bank, small_settings
 
 TESTS = Path(__file__).resolve().parent
 ROOT = TESTS.parent
