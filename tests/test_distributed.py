@@ -42,7 +42,8 @@ try:
 except ShotsmithError as exc:
     print(f"error: {{exc}}", file=sys.stderr)
     sys.exit(1)
-print("world", s.world_size, "rank", s.rank, "epochs", s.epochs)
+print("world", s.world_size, "rank", s.rank, "epochs", s.epochs, s.stopped, flush=True)
+sys.exit(130 if s.stopped == "interrupted" else 0)
 """
 
 
@@ -57,6 +58,25 @@ def worker(tmp: Path, bank: Path, model: Path, *, epochs: int, batch: int) -> Pa
     script.write_text(WORKER.format(tests=str(TESTS), root=str(ROOT), bank=str(bank),
                                     model=str(model), epochs=epochs, batch=batch))
     return script
+
+
+def launch(script: Path, world: int = 2) -> list[subprocess.Popen]:
+    """The ranks as plain processes, with the variables torchrun would set."""
+    port = str(free_port())
+    return [subprocess.Popen(
+        [sys.executable, str(script)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+        text=True, env=env(RANK=str(r), WORLD_SIZE=str(world), LOCAL_RANK=str(r),
+                           LOCAL_WORLD_SIZE=str(world), MASTER_ADDR="127.0.0.1",
+                           MASTER_PORT=port))
+        for r in range(world)]
+
+
+def wait_for(path: Path, proc: subprocess.Popen, seconds: float = 300) -> None:
+    deadline = time.monotonic() + seconds
+    while not path.exists():
+        assert time.monotonic() < deadline, f"no {path.name} after {seconds} s"
+        assert proc.poll() is None, proc.communicate()[1]
+        time.sleep(0.02)
 
 
 def env(**extra: str) -> dict[str, str]:
@@ -151,19 +171,9 @@ def test_two_gloo_ranks_equal_one_process(bank, tmp_path):
 @pytest.mark.slow
 def test_a_killed_rank_stops_the_other_and_keeps_the_last_model(bank, tmp_path):
     model = tmp_path / "m.pt"
-    script = worker(tmp_path, bank, model, epochs=400, batch=6)
-    port = str(free_port())
-    procs = [subprocess.Popen(
-        [sys.executable, str(script)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-        text=True, env=env(RANK=str(r), WORLD_SIZE="2", LOCAL_RANK=str(r),
-                           LOCAL_WORLD_SIZE="2", MASTER_ADDR="127.0.0.1", MASTER_PORT=port))
-        for r in (0, 1)]
+    procs = launch(worker(tmp_path, bank, model, epochs=400, batch=6))
     try:
-        deadline = time.monotonic() + 300
-        while not model.exists():
-            assert time.monotonic() < deadline, "no model file after 300 s"
-            assert procs[0].poll() is None, procs[0].communicate()[1]
-            time.sleep(0.2)
+        wait_for(model, procs[0])
         procs[1].send_signal(signal.SIGKILL)
         _, err = procs[0].communicate(timeout=300)
     finally:
@@ -177,3 +187,40 @@ def test_a_killed_rank_stops_the_other_and_keeps_the_last_model(bank, tmp_path):
     assert "is kept" in lines[0]
     m = load_model_file(model)  # the last complete model file
     assert m.best["epoch"] >= 1 and np.isfinite(m.mu).all()
+
+
+@pytest.fixture(scope="module")
+def uneven_bank(tmp_path_factory) -> Path:
+    return small_bank(tmp_path_factory.mktemp("ddp") / "bank", n=52)  # 43 training clips
+
+
+@pytest.mark.slow
+def test_interrupted_two_ranks_resume_in_one_process(uneven_bank, tmp_path):
+    # 43 clips in batches of 6: each epoch ends on a batch of 1, where rank 1 has no clip
+    # and steps on a stand-in that counts for nothing. Ctrl-C on rank 0 stops both at the
+    # same batch; one process resumes the checkpoint and must land where one process
+    # running throughout lands.
+    batch, epochs = 6, 8
+    ref = tmp_path / "ref.pt"
+    train_model(uneven_bank, ref, small_settings(epochs=epochs, batch_size=batch), device="cpu")
+    model = tmp_path / "m.pt"
+    procs = launch(worker(tmp_path, uneven_bank, model, epochs=epochs, batch=batch))
+    try:
+        wait_for(model, procs[0])
+        procs[0].send_signal(signal.SIGINT)
+        outs = [p.communicate(timeout=300) for p in procs]
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+    assert [p.returncode for p in procs] == [130, 130], [o[1][-2000:] for o in outs]
+    assert "interrupted" in outs[0][0] and "interrupted" in outs[1][0]
+    assert sorted(p.name for p in tmp_path.iterdir() if p.name.startswith("m.pt")) == [
+        "m.pt", "m.pt.ckpt"]
+    s = train_model(uneven_bank, model, small_settings(epochs=epochs, batch_size=batch),
+                    device="cpu", resume=True)
+    assert s.stopped == "max epochs" and s.world_size == 1
+    a, b = load_model_file(ref), load_model_file(model)
+    assert a.best["epoch"] == b.best["epoch"]
+    for k, v in a.model.state_dict().items():
+        torch.testing.assert_close(b.model.state_dict()[k], v, atol=1e-5, rtol=0, msg=k)
