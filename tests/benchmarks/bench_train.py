@@ -294,6 +294,7 @@ def main() -> None:
     ap.add_argument("--busy", action="store_true",
                     help="only quiet vs one-core-busy training steps (see the docstring)")
     ap.add_argument("--policies", default="before,after,after1", help="comma-separated")
+    ap.add_argument("--busy-steps", type=int, default=16, help="timed steps per --busy run")
     ap.add_argument("--worker", nargs="+", help=argparse.SUPPRESS)
     a = ap.parse_args()
     if a.worker:
@@ -332,7 +333,7 @@ def main() -> None:
         print(f"# bench_train --busy: {a.threads} threads, load average {os.getloadavg()[0]:.2f}")
         with tempfile.TemporaryDirectory() as tmp:
             banks = build_banks(Path(tmp), a.clips, tuple(presets))
-            busy_section(banks, presets, a.policies.split(","), steps=steps * 2, reps=reps,
+            busy_section(banks, presets, a.policies.split(","), steps=a.busy_steps, reps=reps,
                          threads=a.threads)
         return
     with tempfile.TemporaryDirectory() as tmp:
