@@ -12,8 +12,9 @@ It sits beside the model file and shares its archive format (:mod:`pipeline.mode
 ``state``
     :class:`TrainState` as plain data (see :meth:`TrainState.to_dict`).
 ``rng``
-    ``{"torch": ..., "cuda": ... or None}``: the generator states, so the
-    reparameterisation noise continues exactly.
+    ``{"torch": ..., "cuda": ... or None}``: the generator states (the
+    reparameterisation noise no longer draws from them: it is keyed by seed, epoch and
+    clip, :func:`pipeline.dataset.clip_noise`; a resume restores them all the same).
 ``model_state``, ``optimizer_state``
     the current weights and AdamW's moments.
 ``best_state``, ``best_mu``, ``best_logvar``

@@ -33,6 +33,13 @@ app = typer.Typer(
 _state = {"debug": False}
 
 
+ThreadsOpt = Annotated[
+    int | None,
+    typer.Option("--threads", min=1, help="CPU threads for torch (default: the cores this "
+                 "process may use, shared among torchrun's processes on this machine)."),
+]
+
+
 def _version(value: bool) -> None:
     if value:
         typer.echo(f"shotsmith {__version__}")
@@ -45,8 +52,12 @@ def _root(
     version: Annotated[
         bool, typer.Option("--version", callback=_version, is_eager=True, help="Print the version.")
     ] = False,
+    threads: ThreadsOpt = None,
 ) -> None:
     _state["debug"] = debug or os.environ.get("SHOTSMITH_DEBUG") == "1"
+    from pipeline.runtime import prepare
+
+    prepare(threads)  # before any command imports torch
 
 
 def _friendly(func):
@@ -289,11 +300,20 @@ def train(
     overwrite: Annotated[
         bool, typer.Option("--overwrite", help="Replace an existing model file and checkpoint.")
     ] = False,
+    threads: ThreadsOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
-    """Train a VAE on a bank; writes one self-contained model file."""
+    """Train a VAE on a bank; writes one self-contained model file.
+
+    Under torchrun (see the README) every process runs this command; rank 0 writes.
+    """
+    from pipeline.runtime import prepare
+
+    threads = prepare(threads)  # before torch is imported
     from pipeline.progress import progress_bar
     from pipeline.train import train_model
+
+    rank0 = os.environ.get("RANK", "0") == "0"
 
     settings, source_of_settings = _settings(
         preset,
@@ -301,7 +321,7 @@ def train(
         model={"latent_dim": latent_dim},
         train={"epochs": epochs, "beta": beta, "seed": seed, "batch_size": batch_size},
     )
-    with progress_bar("train", enabled=_show_progress(as_json)) as bar:
+    with progress_bar("train", enabled=_show_progress(as_json) and rank0) as bar:
 
         def on_epoch(info: dict[str, Any]) -> None:
             if info["event"] == "start":  # the bank and model file passed their checks
@@ -323,11 +343,13 @@ def train(
             progress=on_epoch,
             device=device,
             overwrite=overwrite,
+            threads=threads,
         )
     s = summary.to_dict() | {"settings_from": source_of_settings}
-    _emit(s, as_json, format_train_summary(s))
+    if rank0:
+        _emit(s, as_json, format_train_summary(s))
     if s["stopped"] == "interrupted":
-        if as_json:  # the JSON carries it too; a person watching stderr sees it once
+        if as_json and rank0:  # the JSON carries it too; a person watching stderr sees it once
             typer.echo(f"to resume: {s['resume_command']}", err=True)
         raise typer.Exit(130)
 

@@ -11,7 +11,6 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import math
-import os
 import sys
 import typing
 from dataclasses import dataclass, field
@@ -31,11 +30,10 @@ DECODER_VARIANCES = ("fixed", "calibrated")
 
 
 def available_cores() -> int:
-    """The cores this process may run on: the default for ``--jobs`` and training threads."""
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # pragma: no cover - not on Linux
-        return os.cpu_count() or 1
+    """The cores this process may run on (affinity and cgroup quota): the default for ``--jobs``."""
+    from pipeline.runtime import available_cores as cores
+
+    return cores()
 
 
 def _fail(where: str, msg: str) -> None:

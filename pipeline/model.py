@@ -17,6 +17,7 @@ squared error summed over bins x frames and ``KL`` summed over latent dimensions
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 import torch
@@ -101,17 +102,18 @@ class ShotVAE(nn.Module):
         return torch.sigmoid(self.dec_out(h) + self.template)  # (B, F, T)
 
     def forward(
-        self, x: torch.Tensor, *, sample: bool | None = None
+        self, x: torch.Tensor, *, sample: bool | None = None, eps: torch.Tensor | None = None
     ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
         """Return ``(x_hat, mu, logvar, z)``.
 
         ``z`` is a reparameterised sample when ``sample`` (default: in training
-        mode), else the posterior mean.
+        mode), else the posterior mean; ``eps`` is its standard normal noise
+        (default: drawn from torch's global generator).
         """
         mu, logvar = self.encode(x)
         if sample is None:
             sample = self.training
-        z = reparameterize(mu, logvar) if sample else mu
+        z = reparameterize(mu, logvar, eps) if sample else mu
         return self.decode(z), mu, logvar, z
 
 
@@ -178,7 +180,9 @@ def recon_error(x_hat: torch.Tensor, x: torch.Tensor, *, loud_weight: float = 0.
 MIN_LOG_SIGMA2 = math.log(1e-3**2)  # the calibrated decoder's floor: sigma >= 0.001 (0.1 dB)
 
 
-def calibrated_nll(sse: torch.Tensor, n_values: int) -> torch.Tensor:
+def calibrated_nll(
+    sse: torch.Tensor, n_values: int, mean_sse: torch.Tensor | None = None
+) -> torch.Tensor:
     """Per-clip Gaussian negative log-likelihood at the best shared variance, ``(B,)``.
 
     A calibrated decoder (Rybkin, Daniilidis & Levine 2021, "Simple and Effective VAE
@@ -187,8 +191,14 @@ def calibrated_nll(sse: torch.Tensor, n_values: int) -> torch.Tensor:
     Then ``-log p(x|z) = n/2 log(2 pi sigma^2) + sse / (2 sigma^2)``: the reconstruction
     is weighed against the KL by how well the model already fits, with no fixed variance
     (no hand-set beta) deciding it. ``log sigma^2`` is floored at :data:`MIN_LOG_SIGMA2`.
+
+    sigma^2 is not differentiated: at its maximum-likelihood value the objective's
+    derivative with respect to it is zero, so the gradient is the same, and a batch
+    split over several processes gets the same sigma^2 from ``mean_sse``, the whole
+    batch's mean (default: ``sse.mean()``).
     """
-    log_s2 = torch.clamp(torch.log(sse.mean() / n_values), min=MIN_LOG_SIGMA2)
+    mean_sse = sse.detach().mean() if mean_sse is None else mean_sse.detach()
+    log_s2 = torch.clamp(torch.log(mean_sse / n_values), min=MIN_LOG_SIGMA2)
     return 0.5 * n_values * (math.log(2.0 * math.pi) + log_s2) + 0.5 * sse / log_s2.exp()
 
 
@@ -202,6 +212,7 @@ def vae_loss(
     free_bits: float = 0.0,
     loud_weight: float = 0.0,
     calibrated: bool = False,
+    batch_mean: Callable[[torch.Tensor], torch.Tensor] | None = None,
 ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
     """The negative ELBO per clip (batch mean): ``(loss, recon, kl)``.
 
@@ -210,9 +221,13 @@ def vae_loss(
     error summed over bins x frames (a Gaussian decoder of fixed variance 1/2, up to a
     constant) or, with ``calibrated``, :func:`calibrated_nll`. ``kl`` is the true
     batch-mean KL, without the free-bits floor; ``recon`` and ``kl`` are detached.
+    ``batch_mean`` maps per-clip values to the mean over the whole batch (under
+    ``torch.distributed``, over every rank's share of it; default: this batch's mean):
+    the calibrated variance uses it.
     """
     sse = recon_error(x_hat, x, loud_weight=loud_weight)
-    rec = (calibrated_nll(sse, x[0].numel()) if calibrated else sse).mean()
+    mean_sse = None if batch_mean is None or not calibrated else batch_mean(sse.detach())
+    rec = (calibrated_nll(sse, x[0].numel(), mean_sse) if calibrated else sse).mean()
     kl = kl_per_dim(mu, logvar)
     loss = rec + kl_weight * kl_term(kl, free_bits=free_bits)
     return loss, rec.detach(), kl.sum(dim=1).mean().detach()

@@ -42,18 +42,32 @@ from pipeline.checkpoint import (
     load_checkpoint,
     save_checkpoint,
 )
-from pipeline.config import Settings, TrainSpec, available_cores, choose_settings
+from pipeline.config import Settings, TrainSpec, choose_settings
 from pipeline.dataset import (
     EpochSampler,
     SpectraDataset,
+    clip_noise,
     make_loader,
     mean_spectrogram,
     split_indices,
 )
+from pipeline.distributed import (
+    Ranks,
+    agree,
+    all_sum,
+    batch_mean,
+    lost_peer,
+    ranks_from_env,
+    same_everywhere,
+    together,
+)
+from pipeline.distributed import start as start_ranks
+from pipeline.distributed import stop as stop_ranks
 from pipeline.errors import OutputError, ParameterError, TrainingError
 from pipeline.model import build_model, count_parameters, encode_all, init_template, vae_loss
 from pipeline.modelfile import model_payload, names_digest, remove_stale_temporaries, save_atomic
 from pipeline.outputs import refuse_library
+from pipeline.runtime import default_threads
 from pipeline.sampler import fit_samplers
 
 __all__ = ["TrainSummary", "checkpoint_path", "kl_weight_at", "lr_at", "schedule", "train_model"]
@@ -108,15 +122,17 @@ def schedule(epoch: float, t: TrainSpec) -> tuple[float, float]:
 def batch_loss(
     model: torch.nn.Module, x: torch.Tensor, *, kl_weight: float, free_bits: float,
     loud_weight: float, calibrated: bool = False, sample: bool | None = None,
+    eps: torch.Tensor | None = None, mean: Callable[[torch.Tensor], torch.Tensor] | None = None,
 ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
     """The objective on one batch, ``(loss, recon, kl, x_hat)``: the only place it is computed.
 
-    ``sample`` as in :meth:`~pipeline.model.ShotVAE.forward` (default: a reparameterised
-    draw in training mode, the posterior mean in evaluation mode).
+    ``sample`` and ``eps`` as in :meth:`~pipeline.model.ShotVAE.forward` (default: a
+    reparameterised draw in training mode, the posterior mean in evaluation mode);
+    ``mean`` as ``batch_mean`` of :func:`~pipeline.model.vae_loss` (ranks sharing a batch).
     """
-    x_hat, mu, logvar, _ = model(x, sample=sample)
+    x_hat, mu, logvar, _ = model(x, sample=sample, eps=eps)
     loss, rec, kl = vae_loss(x_hat, x, mu, logvar, kl_weight=kl_weight, free_bits=free_bits,
-                             loud_weight=loud_weight, calibrated=calibrated)
+                             loud_weight=loud_weight, calibrated=calibrated, batch_mean=mean)
     return loss, rec, kl, x_hat
 
 
@@ -135,32 +151,61 @@ class Meter:
 def train_epoch(
     model: torch.nn.Module, opt: torch.optim.Optimizer, loader: torch.utils.data.DataLoader,
     st: TrainState, t: TrainSpec, *, device: torch.device, stop: threading.Event,
-    meter: Meter, on_batch: Callable[[], None],
+    meter: Meter, on_batch: Callable[[], None], noise_dim: int, ranks: Ranks = Ranks(),
 ) -> None:
-    """One optimiser step per batch of ``loader`` (the rest of epoch ``st.epoch``).
+    """One optimiser step per batch of ``t.batch_size`` clips (the rest of epoch ``st.epoch``).
+
+    Each clip's reparameterisation noise is keyed by (seed, epoch, bank row)
+    (:func:`~pipeline.dataset.clip_noise`). Under ``torch.distributed`` (``model`` a
+    ``DistributedDataParallel``) each rank's ``loader`` gives its share of every batch;
+    a share's mean loss is scaled by ``share * world / batch`` so that the averaged
+    gradient is the whole batch's, a rank with no clip left in a short last batch steps
+    on a stand-in that counts for nothing, and the losses, the clip count and the stop
+    flag are summed over ranks once per step (every rank stops at the same batch).
 
     Returns early, before the next batch, once ``stop`` is set. ``st.sums`` and
-    ``st.clips_done`` advance with every batch, so a checkpoint can resume mid-epoch.
+    ``st.clips_done`` (clips of the whole run) advance with every batch, so a checkpoint
+    can resume mid-epoch, with any number of ranks.
     """
     n_train = len(st.train_rows)
-    for x in loader:
-        if stop.is_set():
+    calibrated = t.decoder_variance == "calibrated"
+    shares = iter(loader)
+    for _ in range(math.ceil((n_train - st.clips_done) / t.batch_size)):
+        if stop.is_set() and not ranks.active:
             return
         t0 = time.perf_counter()
+        got = next(shares, None)
+        weight = 1.0
+        if got is None:  # this rank's share of the epoch's short last batch is empty
+            ds = loader.dataset
+            got, weight = ds.__getitems__([0]), 0.0
+        x, rows = got
         lr, kl_weight = schedule(st.epoch + st.clips_done / n_train, t)
         for group in opt.param_groups:
             group["lr"] = lr
-        loss, rec, kl, _ = batch_loss(model, x.to(device, non_blocking=True), kl_weight=kl_weight,
-                                      free_bits=t.free_bits, loud_weight=t.loud_weight,
-                                      calibrated=t.decoder_variance == "calibrated")
-        if not torch.isfinite(loss):
+        eps = torch.from_numpy(clip_noise(t.seed, st.epoch, rows, noise_dim)).to(device)
+        loss, rec, kl, _ = batch_loss(
+            model, x.to(device, non_blocking=True), kl_weight=kl_weight, free_bits=t.free_bits,
+            loud_weight=t.loud_weight, calibrated=calibrated, eps=eps,
+            mean=batch_mean(ranks, device, weight) if ranks.active else None)
+        n_here = len(rows) * weight
+        step = [n_here * v for v in (loss.item(), rec.item(), kl.item())]
+        step += [n_here, float(not math.isfinite(loss.item()) and weight > 0), float(stop.is_set())]
+        if ranks.active:
+            step = all_sum(step, ranks, device).tolist()
+        if step[4]:
             raise _Diverged(f"the training loss became non-finite at epoch {st.epoch + 1}")
+        if step[5]:  # some rank was asked to stop: all stop before this step
+            stop.set()
+            return
+        n_batch = int(round(step[3]))
+        scale = n_here * ranks.world / n_batch
         opt.zero_grad(set_to_none=True)
-        loss.backward()
+        (loss if scale == 1.0 else loss * scale).backward()
         opt.step()
-        st.sums = [s + len(x) * v for s, v in zip(st.sums, (loss.item(), rec.item(), kl.item()))]
-        st.clips_done += len(x)
-        meter.clips += len(x)
+        st.sums = [s + v for s, v in zip(st.sums, step[:3])]
+        st.clips_done += n_batch
+        meter.clips += n_batch
         meter.step_seconds += time.perf_counter() - t0
         on_batch()
 
@@ -168,26 +213,35 @@ def train_epoch(
 @torch.no_grad()
 def validate(
     model: torch.nn.Module, spectra: np.ndarray, rows: np.ndarray, t: TrainSpec, *,
-    db_range: float, device: torch.device, batch_size: int = 128,
+    db_range: float, device: torch.device, batch_size: int = 128, ranks: Ranks = Ranks(),
 ) -> dict[str, float]:
     """Per-clip losses of ``spectra[rows]`` at the full KL weight ``beta``, z = posterior mean.
 
-    Rows are read in chunks (the bank may be a memory map). ``val_rms_db`` is the
-    unweighted RMS error of the [0, 1] spectrogram times ``db_range``.
+    Rows are read in chunks (the bank may be a memory map); under ``torch.distributed``
+    each rank scores every ``world``-th row of each chunk and the sums are reduced, so
+    every rank gets the figures of one process. ``val_rms_db`` is the unweighted RMS
+    error of the [0, 1] spectrogram times ``db_range``.
     """
     model.eval()
-    sums, n = np.zeros(4), 0
+    calibrated = t.decoder_variance == "calibrated"
+    sums = np.zeros(5)  # loss, recon, kl, mse per clip, summed; clips
     for i in range(0, len(rows), batch_size):
-        x = torch.from_numpy(np.asarray(spectra[rows[i : i + batch_size]], dtype=np.float32))
-        x = x.to(device)
+        share = rows[i : i + batch_size][ranks.rank :: ranks.world]
+        mean = batch_mean(ranks, device) if ranks.active else None
+        if len(share) == 0:
+            if mean is not None and calibrated:  # the chunk's variance is reduced over ranks
+                mean(torch.zeros(0, device=device))
+            continue
+        x = torch.from_numpy(np.asarray(spectra[share], dtype=np.float32)).to(device)
         loss, rec, kl, x_hat = batch_loss(model, x, kl_weight=t.beta, free_bits=0.0,
                                           loud_weight=t.loud_weight, sample=False,
-                                          calibrated=t.decoder_variance == "calibrated")
+                                          calibrated=calibrated, mean=mean)
         mse = (x_hat - x).pow(2).mean()
-        sums += len(x) * np.array([loss.item(), rec.item(), kl.item(), mse.item()])
-        n += len(x)
+        sums += len(x) * np.array([loss.item(), rec.item(), kl.item(), mse.item(), 1.0])
+    if ranks.active:
+        sums = all_sum(sums.tolist(), ranks, device).cpu().numpy()
     model.train()
-    loss, rec, kl, mse = (float(v) for v in sums / max(n, 1))
+    loss, rec, kl, mse = (float(v) for v in sums[:4] / max(sums[4], 1))
     return {"val_loss": loss, "val_recon": rec, "val_kl": kl, "val_rms_db": db_range * mse**0.5}
 
 
@@ -283,6 +337,8 @@ class TrainSummary:
     device: str
     threads: int
     resume_command: str | None
+    world_size: int = 1  # training processes (torchrun ranks)
+    rank: int = 0  # this process's rank; only rank 0 writes files
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -321,11 +377,16 @@ def fit(
     model: torch.nn.Module, opt: torch.optim.Optimizer, st: TrainState, kept: Kept | None,
     sampler: EpochSampler, files: RunFiles, *, t: TrainSpec, db_range: float,
     device: torch.device, stop: threading.Event, emit: Emit, meter: Meter,
+    trainer: torch.nn.Module | None = None, ranks: Ranks = Ranks(),
 ) -> tuple[str, Kept | None]:
-    """Run epochs until ``t.epochs``, early stopping or ``stop``; ``(why it stopped, kept)``."""
+    """Run epochs until ``t.epochs``, early stopping or ``stop``; ``(why it stopped, kept)``.
+
+    ``trainer`` is what takes the training steps (``model`` wrapped in
+    ``DistributedDataParallel`` under ``torch.distributed``); only rank 0 keeps codes.
+    """
     spectra = files.bank.spectra
     loader = make_loader(SpectraDataset(spectra, st.train_rows), sampler,
-                         batch_size=t.batch_size, device=device)
+                         batch_size=t.batch_size // ranks.world, device=device)
     # no held-out clip (tiny bank or val_fraction 0): validate on the training clips
     val_rows = st.val_rows if len(st.val_rows) else st.train_rows
     n_train, start = len(st.train_rows), st.epoch
@@ -347,14 +408,15 @@ def fit(
             return "early stop", kept
         epoch_t0 = time.perf_counter()
         sampler.set_epoch(st.epoch, start=st.clips_done)
-        train_epoch(model, opt, loader, st, t, device=device, stop=stop, meter=meter,
-                    on_batch=on_batch)
+        train_epoch(trainer or model, opt, loader, st, t, device=device, stop=stop,
+                    meter=meter, on_batch=on_batch, noise_dim=model.latent_dim, ranks=ranks)
         st.seconds += time.perf_counter() - epoch_t0
         if stop.is_set():
             files.save_checkpoint(st, model, opt, kept)
             return "interrupted", kept
 
-        val = validate(model, spectra, val_rows, t, db_range=db_range, device=device)
+        val = validate(model, spectra, val_rows, t, db_range=db_range, device=device,
+                       ranks=ranks)
         if not math.isfinite(val["val_loss"]):
             raise _Diverged(f"the validation loss became non-finite at epoch {st.epoch + 1}")
         done = max(st.clips_done, 1)
@@ -366,7 +428,7 @@ def fit(
         improved = st.best is None or val["val_loss"] < st.best["val_loss"]
         if improved:
             st.best, st.since_best = {"epoch": st.epoch + 1, **val}, 0
-            kept = keep(model, spectra, device)
+            kept = keep(model, spectra, device) if ranks.main else None
             files.save_model(st, kept)
         else:
             st.since_best += 1
@@ -401,6 +463,7 @@ def train_model(
     device: str = "auto",
     interrupt: threading.Event | None = None,
     overwrite: bool = False,
+    threads: int | None = None,
 ) -> TrainSummary:
     """Train the VAE on a bank and write the model file.
 
@@ -420,12 +483,21 @@ def train_model(
         Receives dicts with ``event`` ("start", "batch", "epoch"), ``epoch`` (1-based),
         ``epochs``, ``train_loss``, ``val_loss``, ``recon``, ``kl``, ``eta_seconds``, ...
     device : str
-        "auto" (CUDA when present), "cpu", "cuda", ...
+        "auto" (CUDA when present), "cpu", "cuda", ... Under ``torchrun`` "auto" and
+        "cuda" take the GPU numbered ``LOCAL_RANK``.
     interrupt : threading.Event, optional
         Set it to stop after the current batch and save the checkpoint. When None,
         Ctrl-C (SIGINT) in the main thread does this; a second Ctrl-C aborts at once.
     overwrite : bool
         Replace an existing model file instead of refusing.
+    threads : int, optional
+        CPU threads (default: :func:`pipeline.runtime.default_threads`, the available
+        cores shared among the ranks on this machine).
+
+    Under ``torchrun`` (``WORLD_SIZE`` > 1) this runs data-parallel on every rank:
+    ``settings.train.batch_size`` is the whole batch, split evenly among the ranks;
+    only rank 0 writes files and reports progress; a resume may use another number of
+    ranks. A single process is a world of one.
 
     Returns
     -------
@@ -443,7 +515,23 @@ def train_model(
     """
     started = time.perf_counter()
     bank_dir, model_path = Path(bank_dir), Path(model_path)
-    bank = open_bank(bank_dir)
+    ranks = ranks_from_env()
+    dev = pick_device(device, ranks)
+    start_ranks(ranks, dev)
+    try:
+        return _train(bank_dir, model_path, settings, ranks=ranks, dev=dev, resume=resume,
+                      progress=progress, interrupt=interrupt, overwrite=overwrite,
+                      threads=threads, started=started)
+    finally:
+        stop_ranks(ranks)
+
+
+def _train(
+    bank_dir: Path, model_path: Path, settings: Settings | None, *, ranks: Ranks,
+    dev: torch.device, resume: bool, progress: Emit | None, interrupt: threading.Event | None,
+    overwrite: bool, threads: int | None, started: float,
+) -> TrainSummary:
+    bank = together(ranks, lambda: open_bank(bank_dir))
     if len(bank) < MIN_CLIPS:
         raise TrainingError(f"{bank_dir}: the bank holds {len(bank)} clip"
                             f"{'' if len(bank) == 1 else 's'}; training needs at least "
@@ -453,44 +541,70 @@ def train_model(
     settings = settings.replace(audio=bank.audio)
     files = RunFiles(model_path, settings, bank, {
         "path": str(bank_dir.resolve()), "n_clips": len(bank),
-        "names_sha256": names_digest(bank.names), "fingerprint": bank.fingerprint()})
-    _check_outputs(files, resume=resume, overwrite=overwrite)
-    dev = pick_device(device)
-    for path in (model_path, files.checkpoint):  # left by a run that was killed while saving
-        remove_stale_temporaries(path)
+        "names_sha256": names_digest(bank.names), "fingerprint": bank.fingerprint()},
+        enabled=ranks.main)
+    same_everywhere(ranks, files.bank_info["names_sha256"], f"{bank_dir}: the bank's clip list")
     t = settings.train
-    threads = available_cores() if dev.type == "cpu" else torch.get_num_threads()
+    if t.batch_size % ranks.world:
+        raise ParameterError(f"train.batch_size {t.batch_size} is not a multiple of the "
+                             f"{ranks.world} training processes (each takes an equal share)")
+
+    def check_outputs() -> None:  # rank 0: the model's folder may exist on its machine only
+        _check_outputs(files, resume=resume, overwrite=overwrite)
+        for path in (model_path, files.checkpoint):  # left by a run killed while saving
+            remove_stale_temporaries(path)
+
+    agree(ranks, check_outputs)
+    if threads is None:
+        threads = default_threads() if dev.type == "cpu" else torch.get_num_threads()
     with _run_environment(dev, threads, interrupt) as stop:
         torch.manual_seed(t.seed)
         model = build_model(settings.audio, settings.model).to(dev)
         opt = make_optimizer(model, t)
         kept = None
         if resume:
-            ckpt = load_checkpoint(files.checkpoint, settings=settings, bank=files.bank_info)
+            ckpt = agree(ranks, lambda: load_checkpoint(files.checkpoint, settings=settings,
+                                                        bank=files.bank_info))
             model.load_state_dict(ckpt.model_state)
             opt.load_state_dict(ckpt.optimizer_state)
             opt.param_groups[0]["weight_decay"] = t.weight_decay  # this run's settings win
-            st, kept = ckpt.state, ckpt.kept
+            st, kept = ckpt.state, ckpt.kept if ranks.main else None
             torch.set_rng_state(ckpt.rng["torch"])
             if dev.type == "cuda" and ckpt.rng.get("cuda") is not None:
                 torch.cuda.set_rng_state(ckpt.rng["cuda"], dev)
         else:
             st = fresh_state(model, bank, t, dev)
+        trainer = model
+        if ranks.active:
+            trainer = torch.nn.parallel.DistributedDataParallel(
+                model, device_ids=[dev.index] if dev.type == "cuda" else None)
         info = {"n_train": len(st.train_rows), "n_val": len(st.val_rows), "device": str(dev),
-                "threads": threads, "parameters": count_parameters(model)}
-        emit = progress or (lambda d: None)
+                "threads": threads, "parameters": count_parameters(model),
+                "world_size": ranks.world, "rank": ranks.rank}
+        emit = (progress or (lambda d: None)) if ranks.main else (lambda d: None)
         emit({"event": "start", "epoch": st.epoch, "epochs": t.epochs, **info})
         start_epoch, meter = st.epoch, Meter()
         audio = settings.audio
+        sampler = EpochSampler(len(st.train_rows), seed=t.seed, rank=ranks.rank,
+                               world=ranks.world)
         try:
-            stopped, kept = fit(model, opt, st, kept, EpochSampler(len(st.train_rows), seed=t.seed),
-                                files, t=t, db_range=audio.db_ceiling - audio.db_floor,
-                                device=dev, stop=stop, emit=emit, meter=meter)
+            stopped, kept = fit(model, opt, st, kept, sampler, files, t=t,
+                                db_range=audio.db_ceiling - audio.db_floor, device=dev,
+                                stop=stop, emit=emit, meter=meter, trainer=trainer, ranks=ranks)
         except _Diverged as exc:
             kept_note = (f"the last good model {model_path} is kept" if st.best is not None
                          else "no model was written")
             raise TrainingError(f"{model_path}: {exc}; {kept_note} "
                                 "(try a lower learning_rate or beta)") from None
+        except Exception as exc:
+            if not (ranks.active and lost_peer(exc)):
+                raise
+            first = (str(exc).strip().splitlines() or [type(exc).__name__])[0][:160]
+            kept_note = (f"the last complete model {model_path} is kept" if st.best is not None
+                         else "no model was written")
+            raise TrainingError(
+                f"{model_path}: rank {ranks.rank}: another training process stopped "
+                f"({first}); {kept_note}; continue with --resume") from None
         if stopped != "interrupted":
             finish(files, st, kept)
     seconds = time.perf_counter() - started
@@ -527,10 +641,16 @@ def _check_outputs(files: RunFiles, *, resume: bool, overwrite: bool) -> None:
         raise TrainingError(f"{ckpt_path}: no checkpoint to resume (train without --resume)")
 
 
-def pick_device(device: str) -> torch.device:
-    """``"auto"`` is CUDA when present, else the CPU; anything else must exist here."""
+def pick_device(device: str, ranks: Ranks = Ranks()) -> torch.device:
+    """``"auto"`` is CUDA when present, else the CPU; anything else must exist here.
+
+    Under ``torchrun`` a bare ``"cuda"`` (or ``"auto"`` on a GPU machine) is the GPU
+    numbered ``LOCAL_RANK``.
+    """
     if device == "auto":
-        return torch.device("cuda" if torch.cuda.is_available() else "cpu")
+        device = "cuda" if torch.cuda.is_available() else "cpu"
+    if device == "cuda" and ranks.active and torch.cuda.is_available():
+        device = f"cuda:{ranks.local_rank}"
     try:
         dev = torch.device(device)
     except (RuntimeError, TypeError):

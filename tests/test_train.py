@@ -107,7 +107,8 @@ def test_epoch_sampler_order_depends_only_on_seed_and_epoch():
 def test_dataset_reads_float16_rows_as_float32(tmp_path):
     spectra = np.random.default_rng(0).random((5, 3, 4)).astype(np.float16)
     ds = SpectraDataset(spectra, np.array([4, 1]))
-    batch = ds.__getitems__([1, 0])
+    batch, rows = ds.__getitems__([1, 0])
+    assert rows.tolist() == [1, 4]
     assert batch.dtype == torch.float32 and batch.shape == (2, 3, 4)
     np.testing.assert_array_equal(batch.numpy(), spectra[[1, 4]].astype(np.float32))
 

@@ -1,6 +1,15 @@
 """Training throughput and peak memory, tiny and drums presets, on a 400-clip synthesized bank.
 
     python tests/benchmarks/bench_train.py [--quick] [--threads 2]
+    python tests/benchmarks/bench_train.py --busy [--presets tiny,drums,long]
+
+``--busy`` measures the bare training step of each preset (its own batch size) and
+of the conv2d reference (batch 32) on a quiet machine and with one core taken by a
+spinning process that the benchmark starts beside it, side by side with their
+ratio, under each thread policy (``--policies``): ``before`` (the OpenMP default
+wait policy, cores threads), ``after`` (:func:`pipeline.runtime.prepare`: passive
+waiting, threads from the available cores) and ``after1`` (passive, 1 thread).
+Target: busy >= 50 % of quiet for each preset, quiet not below ``before``.
 
 Every measurement runs in a fresh process (so ``ru_maxrss`` is its own peak) and
 prints one JSON line; the parent prints a table. Measured in the same run:
@@ -191,22 +200,76 @@ def worker_demo(kit: str, work: str) -> dict:
 # -------------------------------------------------------------------- parent
 
 
-def run(args: list[str], *, threads: int, env: dict | None = None) -> dict:
+def run(args: list[str], *, threads: int, env: dict | None = None, busy: bool = False) -> dict:
     e = {**os.environ, "OMP_NUM_THREADS": str(threads), **(env or {})}
-    out = subprocess.run([sys.executable, __file__, "--worker", *args], env=e,
-                         capture_output=True, text=True)
+    e = {k: v for k, v in e.items() if v is not None}  # None: unset that variable
+    spinner = None
+    if busy:  # another process holding one core for the whole measurement
+        spinner = subprocess.Popen([sys.executable, "-c", "while True: pass"])
+    try:
+        out = subprocess.run([sys.executable, __file__, "--worker", *args], env=e,
+                             capture_output=True, text=True)
+    finally:
+        if spinner is not None:
+            spinner.kill()
+            spinner.wait()
     if out.returncode:
         raise SystemExit(f"worker {args} failed:\n{out.stderr[-3000:]}")
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
-def build_banks(root: Path, n: int) -> dict[str, Path]:
+POLICIES = {  # environment of a worker under each thread policy (None: unset)
+    "before": {"OMP_WAIT_POLICY": None, "BENCH_POLICY": None},
+    "after": {"OMP_WAIT_POLICY": None, "BENCH_POLICY": "after"},
+    "after1": {"OMP_WAIT_POLICY": None, "BENCH_POLICY": "after", "BENCH_THREADS": "1"},
+}
+
+
+def busy_section(banks: dict[str, Path], presets: list[str], policies: list[str], *,
+                 steps: int, reps: int, threads: int) -> None:
+    """Quiet against one-core-busy training steps, ours and conv2d, per policy."""
+    from pipeline.config import load_settings
+
+    print(f"# busy: {steps} timed steps, best of {reps}; quiet and busy interleaved; "
+          "ratios are busy/quiet and ours/conv2d of the same condition", flush=True)
+    table = {}
+    for preset in presets:
+        b = str(banks[preset])
+        bs = load_settings(preset).train.batch_size
+        for pol in policies:
+            env = POLICIES[pol]
+            t = int(env.get("BENCH_THREADS") or threads)
+            cps = {}
+            for _ in range(reps):
+                for kind, batch in (("ours", bs), ("conv2d", 32)):
+                    for busy in (False, True):
+                        r = run([kind, b, str(steps), str(batch)], threads=t, env=env, busy=busy)
+                        cps[kind, busy] = max(cps.get((kind, busy), 0.0), r["clips_per_second"])
+            table[preset, pol] = cps
+            ratio = cps["ours", True] / cps["ours", False]
+            print(f"{preset:6s} {pol:7s} ours b{bs:<3d} quiet {cps['ours', False]:6.0f} busy "
+                  f"{cps['ours', True]:6.0f} clips/s (busy/quiet {ratio:.2f})"
+                  f" | conv2d b32 quiet {cps['conv2d', False]:5.0f} busy {cps['conv2d', True]:5.0f}"
+                  f" ({cps['conv2d', True] / cps['conv2d', False]:.2f}) | ours/conv2d quiet "
+                  f"{cps['ours', False] / cps['conv2d', False]:.2f}x busy "
+                  f"{cps['ours', True] / cps['conv2d', True]:.2f}x | load "
+                  f"{os.getloadavg()[0]:.1f}", flush=True)
+    for preset in presets:
+        if (preset, "before") in table and (preset, "after") in table:
+            q0, q1 = table[preset, "before"]["ours", False], table[preset, "after"]["ours", False]
+            r1 = table[preset, "after"]["ours", True] / q1
+            print(f"# {preset}: after/before quiet {q1 / q0:.2f}x; busy/quiet after {r1:.2f} "
+                  f"(target >= 0.50: {'met' if r1 >= 0.5 else 'NOT met'})", flush=True)
+
+
+def build_banks(root: Path, n: int, presets: tuple[str, ...] = ("tiny", "drums")
+                ) -> dict[str, Path]:
     from synthbank import FAMILIES, make_bank
 
     from pipeline.config import load_settings
 
     banks = {}
-    for preset in ("tiny", "drums"):
+    for preset in presets:
         t0 = time.perf_counter()
         path = make_bank(root / preset, load_settings(preset).audio,
                          per_family=-(-n // len(FAMILIES)))
@@ -228,12 +291,22 @@ def main() -> None:
     ap.add_argument("--skip-demo", action="store_true")
     ap.add_argument("--presets", default="tiny,drums", help="comma-separated")
     ap.add_argument("--skip-alloc", action="store_true", help="no allocator variants")
+    ap.add_argument("--busy", action="store_true",
+                    help="only quiet vs one-core-busy training steps (see the docstring)")
+    ap.add_argument("--policies", default="before,after,after1", help="comma-separated")
+    ap.add_argument("--busy-steps", type=int, default=16, help="timed steps per --busy run")
     ap.add_argument("--worker", nargs="+", help=argparse.SUPPRESS)
     a = ap.parse_args()
     if a.worker:
+        n_threads = int(os.environ.get("OMP_NUM_THREADS", "2"))
+        if os.environ.get("BENCH_POLICY") == "after":  # what the CLI does at its entry
+            from pipeline.runtime import prepare
+
+            n_threads = prepare(int(os.environ["BENCH_THREADS"])
+                                if os.environ.get("BENCH_THREADS") else None)
         import torch
 
-        torch.set_num_threads(int(os.environ.get("OMP_NUM_THREADS", "2")))
+        torch.set_num_threads(n_threads)
         torch.optim.AdamW([torch.zeros(1, requires_grad=True)])  # its one-time imports (~2 s)
         if os.environ.get("BENCH_MALLOPT"):
             from pipeline.train import keep_freed_buffers
@@ -255,6 +328,14 @@ def main() -> None:
     allocs = {"": None, " keep (env)": KEEP_BUFFERS, " keep (mallopt)": {"BENCH_MALLOPT": "1"}}
     print(f"# bench_train: {a.threads} threads, best of {reps} fresh processes per row, "
           f"load average {os.getloadavg()[0]:.2f}")
+    if a.busy:
+        presets = a.presets.split(",")
+        print(f"# bench_train --busy: {a.threads} threads, load average {os.getloadavg()[0]:.2f}")
+        with tempfile.TemporaryDirectory() as tmp:
+            banks = build_banks(Path(tmp), a.clips, tuple(presets))
+            busy_section(banks, presets, a.policies.split(","), steps=a.busy_steps, reps=reps,
+                         threads=a.threads)
+        return
     with tempfile.TemporaryDirectory() as tmp:
         banks = build_banks(Path(tmp), a.clips)
         rows: dict[str, dict] = {}
