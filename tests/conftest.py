@@ -5,15 +5,25 @@ failure repeats exactly. ``small_banks(n)``: a bank of ``n`` parametric spectrog
 (:func:`synthbank.small_bank`, three categories), built once per session and shared
 read-only. ``small_model``: a model file trained for three epochs on ``small_banks(36)``,
 also built once; tests copy it before changing it.
+
+Ctrl-C tests send SIGINT to child processes. A test run started in the background of a
+non-interactive shell (``cmd &``, nohup) inherits SIGINT as ignored, and an ignored
+signal stays ignored across exec, so Python in the child never raises
+KeyboardInterrupt: the CLI would look deaf to Ctrl-C. Catching it here makes the
+children start with the default disposition again, as under a terminal.
 """
 
 from __future__ import annotations
 
+import signal
 from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 import pytest
+
+if signal.getsignal(signal.SIGINT) is signal.SIG_IGN:
+    signal.signal(signal.SIGINT, signal.default_int_handler)
 
 RNG_SEED = 1770  # a module may set its own RNG_SEED
 
