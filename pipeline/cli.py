@@ -529,7 +529,7 @@ def demo(
         Path, typer.Option("--out", help="Folder for everything the demo writes.")
     ] = Path("shotsmith-demo"),
     epochs: Annotated[
-        int | None, typer.Option("--epochs", min=1, help="Training epochs (default: the preset's).")
+        int | None, typer.Option("--epochs", min=1, help="Training epochs (default 80).")
     ] = None,
     overwrite: OverwriteOpt = False,
     as_json: JsonOpt = False,
