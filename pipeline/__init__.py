@@ -5,7 +5,9 @@ ingest -> spectra/bank -> model/train -> latent -> phase -> render.
 
 The public API is importable from here (``pipeline.generate``, ``pipeline.train_model``
 ...), but each name is looked up only when first used (module ``__getattr__``, PEP 562),
-so importing the package stays cheap: nothing here imports torch.
+so importing the package stays cheap: nothing here imports torch. Importing it does
+set ``OMP_WAIT_POLICY=PASSIVE`` where unset (:mod:`pipeline.runtime`), so a script that
+imports shotsmith before torch trains at a usable speed on a busy machine too.
 """
 
 from __future__ import annotations
@@ -13,7 +15,10 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
+from pipeline.runtime import prepare as _prepare
+
 __version__ = "0.1.0"
+_prepare()
 
 # public name -> the module that defines it
 _API = {

@@ -127,3 +127,19 @@ def test_a_model_saved_from_cuda_tensors_loads_on_the_cpu(tmp_path):
     spectra = m.decode(m.mu[:2])
     assert spectra.shape == (2, settings.audio.n_bins, settings.audio.n_frames)
     assert np.isfinite(spectra).all()
+
+
+def test_importing_the_package_sets_passive_waiting_without_loading_torch():
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if k != "OMP_WAIT_POLICY"}
+    code = ("import os, sys, pipeline; "
+            "print(os.environ.get('OMP_WAIT_POLICY'), 'torch' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                         text=True, check=True).stdout.split()
+    assert out == ["PASSIVE", "False"]
+    env["OMP_WAIT_POLICY"] = "ACTIVE"  # the user's own choice wins
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                         text=True, check=True).stdout.split()
+    assert out == ["ACTIVE", "False"]
