@@ -64,6 +64,7 @@ LIMITS: dict[str, tuple[float, float, str]] = {
     "render.peak_db": (-60.0, 0.0, " dBTP"), "render.loudness": (-70.0, 0.0, " LUFS"),
     "render.fade_in_ms": (0.0, 10000.0, " ms"), "render.fade_out_ms": (0.0, 10000.0, " ms"),
     "render.batch_size": (1, 4096, ""), "render.output_rate": (8000, 192000, " Hz"),
+    "render.gate_db": (-300.0, 0.0, " dB"),
 }
 
 
@@ -234,6 +235,10 @@ class RenderSpec:
     batch_size: int = 32  # clips decoded and phase-reconstructed together
     trim: bool = False  # write each file only until its sound ends
     output_rate: int | None = None  # WAV sample rate (soxr after reconstruction); None = analysis
+    # decoded bins quieter than this (dB, the spectrogram's scale) are silence before phase
+    # reconstruction (resynth renders real magnitudes untouched); at or below audio.db_floor
+    # it does nothing (see spectra.gate_quiet_bins)
+    gate_db: float = -99.0
 
     def __post_init__(self) -> None:
         _check_limits(self, "render")

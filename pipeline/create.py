@@ -70,7 +70,7 @@ def _render(
     spec = render_spec(mf, render)
     refuse_library(out, option="--out", model=mf)
     written = render_spectra(
-        decoded_batches(mf, plan, spec.batch_size),
+        decoded_batches(mf, plan, spec),
         out,
         mf.audio,
         spec,

@@ -197,6 +197,14 @@ def _paired_ratio(y_ref: np.ndarray, y_dec: np.ndarray, sr: int) -> float:
     return float(np.median(quality.paired_distance_ratio(B, A, spacing)))
 
 
+def _decode(mf, codes: np.ndarray) -> np.ndarray:
+    """Codes decoded as the commands render them: behind the gate on the decoder's bed."""
+    from pipeline.spectra import gate_quiet_bins
+
+    return gate_quiet_bins(np.asarray(mf.decode(codes), np.float32), mf.audio,
+                           mf.settings.render.gate_db)
+
+
 def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[int],
                             rng: np.random.Generator, seed: int):
     """The ``reconstruction`` section and the figure's originals / reconstructions."""
@@ -206,7 +214,7 @@ def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[i
     out: dict[str, Any] = {"clips": int(len(idx)), "source": source}
     if bank is None:
         why = "no bank given: pass --bank with the bank the model was trained on"
-        decoded = np.asarray(mf.decode(np.asarray(mf.mu, np.float32)[rows]), np.float32)
+        decoded = _decode(mf, np.asarray(mf.mu, np.float32)[rows])
         out.update(decoded=_not_measured(why), phase=_not_measured(why),
                    rating="not measured", verdict=f"not measured: {why}")
         return out, None, decoded
@@ -230,7 +238,7 @@ def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[i
     for a in range(0, len(present), DECODE_BATCH):  # in chunks: a large library stays small
         part = present[a : a + DECODE_BATCH]
         U_ref = np.stack([np.asarray(bank.spectra[row_of[names[i]]], np.float32) for i in part])
-        U_dec = np.asarray(mf.decode(mu[part]), np.float32)
+        U_dec = _decode(mf, mu[part])
         S_ref, S_dec = unit_to_magnitude(U_ref, audio), unit_to_magnitude(U_dec, audio)
         sc[a : a + len(part)], lsd[a : a + len(part)] = _spectral_errors(S_ref, S_dec)
         for j in range(len(part)):

@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-from pipeline import latent
+from pipeline import latent, spectra
 from pipeline.config import RenderSpec
 from pipeline.errors import ParameterError
 from pipeline.outputs import numbered
@@ -254,19 +254,22 @@ def render_spec(mf, render: RenderSpec | None) -> RenderSpec:
     return render or mf.settings.render
 
 
-def decoded_batches(mf, plan: Plan, batch_size: int
+def decoded_batches(mf, plan: Plan, render: RenderSpec
                     ) -> Iterator[tuple[np.ndarray, list[dict[str, Any]]]]:
-    """The plan's codes decoded ``batch_size`` at a time, each item given its code and its
-    nearest training clip (distance also relative to the clips' typical spacing)."""
+    """The plan's codes decoded ``render.batch_size`` at a time, bins below
+    ``render.gate_db`` silenced (:func:`pipeline.spectra.gate_quiet_bins`), each item given
+    its code and its nearest training clip (distance also relative to the clips' typical
+    spacing)."""
     idx, dist = latent.nearest_codes(plan.codes, mf.mu)
     spacing = max(latent.typical_spacing(mf.mu), 1e-12)
     for item, z, i, d in zip(plan.items, plan.codes, idx, dist):
         item["z"] = [round(float(v), 6) for v in z]
         item["nearest"] = {"name": mf.clip_names[i], "distance": float(d),
                            "distance_ratio": float(d / spacing)}
-    for start in range(0, len(plan.items), batch_size):
-        stop = start + batch_size
-        yield mf.decode(plan.codes[start:stop]), plan.items[start:stop]
+    for start in range(0, len(plan.items), render.batch_size):
+        stop = start + render.batch_size
+        U = spectra.gate_quiet_bins(mf.decode(plan.codes[start:stop]), mf.audio, render.gate_db)
+        yield U, plan.items[start:stop]
 
 
 def render_plan(mf, plan: Plan, render: RenderSpec | None = None, *,
@@ -276,7 +279,7 @@ def render_plan(mf, plan: Plan, render: RenderSpec | None = None, *,
 
     spec = dataclasses.replace(render_spec(mf, render), bit_depth="32f")  # no quantisation
     audio, items, done = [], [], 0
-    for batch in finish_batches(decoded_batches(mf, plan, spec.batch_size), mf.audio, spec,
+    for batch in finish_batches(decoded_batches(mf, plan, spec), mf.audio, spec,
                                 seed=plan.seed):
         for f in batch:
             audio.append(f.audio)

@@ -124,6 +124,21 @@ def unit_to_magnitude(U: np.ndarray, spec: AudioSpec) -> np.ndarray:
     return np.where(U <= 0.0, 0.0, S).astype(np.float32)
 
 
+def gate_quiet_bins(U: np.ndarray, spec: AudioSpec, gate_db: float) -> np.ndarray:
+    """``U`` ([0, 1] scale) with every bin quieter than ``gate_db`` set to 0 (silence).
+
+    A decoder is a regression with a sigmoid output: where its training clips were silent
+    (0, the ``spec.db_floor``) it predicts values just above the floor instead. One such
+    bin is inaudible, but hundreds of them in every frame sum to a bed of noise near 60 dB
+    below the peak that never ends, where real one-shots fall to digital silence. The
+    presets gate 1 dB above the -100 dB floor (DEVELOPERS.md, "Tails", has the sweep).
+    """
+    if gate_db <= spec.db_floor:
+        return U
+    level = float(db_to_unit(gate_db, db_floor=spec.db_floor, db_ceiling=spec.db_ceiling))
+    return np.where(U < level, np.float32(0.0), U).astype(np.float32, copy=False)
+
+
 def pad_for_analysis(y: np.ndarray, spec: AudioSpec) -> np.ndarray:
     """``spec.analysis_pad`` zeros before a clip (or a batch ``(..., n)``)."""
     y = np.asarray(y)

@@ -262,3 +262,39 @@ def test_output_rate_writes_at_the_session_rate_and_records_both_rates(tmp_path)
     assert spectrum[f > 8500].sum() < 1e-6 * spectrum.sum()
     m = load_manifest(tmp_path)
     assert m["sample_rate"] == 16000 and m["output_rate"] == 48000
+
+
+def test_gate_silences_only_bins_quieter_than_the_gate():
+    audio = TINY.audio  # db_floor -100, db_ceiling 0: unit 0.05 is -95 dB
+    U = np.array([[[0.0, 0.02, 0.0499, 0.0501, 0.5, 1.0]]], dtype=np.float32)
+    got = spectra.gate_quiet_bins(U, audio, -95.0)
+    np.testing.assert_array_equal(got, np.array([[[0, 0, 0, 0.0501, 0.5, 1]]], np.float32))
+    # at or below the floor the gate does nothing
+    assert spectra.gate_quiet_bins(U, audio, audio.db_floor) is U
+
+
+def _decaying_tone_over_a_bed(audio, bed_unit):
+    """A 1 kHz tone's spectrogram that decays by 60 dB in 0.15 s and stops at 0.3 s, under
+    a bed of every bin at ``bed_unit`` in every frame: what a decoder makes of silence."""
+    t = np.arange(audio.n_samples) / audio.sample_rate
+    y = np.sin(2 * np.pi * 1000.0 * t) * 10.0 ** (-3.0 * t / 0.15) * (t < 0.3)
+    U = spectra.clip_to_unit(0.89 * y, audio)
+    return np.maximum(U, bed_unit)[None]
+
+
+@pytest.mark.parametrize("gate_db, silent_tail", [(-90.0, True), (-100.0, False)])
+def test_decoders_faint_bed_renders_as_digital_silence_behind_the_gate(gate_db, silent_tail):
+    drums = load_settings("drums")  # 1025 bins: the bed sums over all of them
+    audio = drums.audio
+    U = _decaying_tone_over_a_bed(audio, bed_unit=0.08)  # -92 dB in every bin
+    spec = drums.render
+    U = spectra.gate_quiet_bins(U, audio, gate_db)  # as sounds.decoded_batches does
+    (done,) = render.finish_batches([(U, [{"stem": "x"}])], audio, spec)
+    out, length = done[0].audio, done[0].meta["natural_length_s"]
+    tail = out[int(0.5 * audio.sample_rate):]
+    if silent_tail:
+        # the tone falls 60 dB below its peak near 0.15 s (0.3 s at the latest, where it stops)
+        assert length < 0.35 and not np.any(tail)
+    else:
+        # without the gate the bed alone stays within 60 dB of the peak to the last sample
+        assert length > 0.9 and np.any(tail)

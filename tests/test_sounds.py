@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import subprocess
 import sys
 
@@ -135,3 +136,19 @@ def test_each_prior_draws_its_own_codes(mf):
     assert not np.allclose(fitted, mixture) and np.all(np.isfinite(mixture))
     with pytest.raises(ParameterError, match="does not combine with prior='mixture'"):
         sounds.plan_generate(mf, n=2, near=mf.clip_categories[0], prior="mixture")
+
+
+def test_decoded_sounds_pass_the_gate_on_the_decoders_faint_bed(mf):
+    plan = sounds.plan_generate(mf, n=8, seed=5)
+    raw = mf.decode(plan.codes)
+    a = mf.audio
+    # a three-epoch decoder has no bed near the floor yet: gate its quietest quarter instead
+    level = float(np.percentile(raw, 25))
+    gate_db = a.db_floor + level * (a.db_ceiling - a.db_floor)
+    spec = dataclasses.replace(sounds.render_spec(mf, None), gate_db=gate_db)
+    (U, items), = sounds.decoded_batches(mf, plan, spec)
+    assert len(items) == 8
+    np.testing.assert_array_equal(U, np.where(raw < level, 0, raw))
+    assert 0.2 < np.mean(U == 0) < 0.3
+    (U_off, _), = sounds.decoded_batches(mf, plan, dataclasses.replace(spec, gate_db=a.db_floor))
+    np.testing.assert_array_equal(U_off, raw)

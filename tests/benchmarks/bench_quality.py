@@ -58,6 +58,7 @@ from pipeline.frontend import load_clip  # noqa: E402
 from pipeline.manifest import load_manifest  # noqa: E402
 from pipeline.spectra import (  # noqa: E402
     clip_to_unit,
+    gate_quiet_bins,
     log_spectral_distance,
     spectral_convergence_db,
     unit_to_magnitude,
@@ -102,7 +103,8 @@ def _render_codes(mf, Z: np.ndarray, out: Path, render) -> list[np.ndarray]:
     from pipeline.render import render_spectra
 
     items = [{"stem": f"recon-{i:04d}", "kind": "reconstruction"} for i in range(len(Z))]
-    batches = ((mf.decode(Z[s : s + 32]), items[s : s + 32]) for s in range(0, len(Z), 32))
+    batches = ((gate_quiet_bins(mf.decode(Z[s : s + 32]), mf.audio, render.gate_db),
+                items[s : s + 32]) for s in range(0, len(Z), 32))
     render_spectra(batches, out, mf.audio, render, seed=1)
     return _wavs(out)[0]
 
