@@ -161,9 +161,8 @@ def test_a_format_2_bank_still_opens_and_format_1_asks_for_ingest(tmp_path):
 @pytest.mark.parametrize("n", [20_000, pytest.param(100_000, marks=pytest.mark.slow)])
 def test_reading_the_table_takes_far_less_memory_than_the_whole_list(tmp_path, n):
     """The tracemalloc peak of reading ``n`` clips as columns against json.load of the same
-    clips as one list in index.json (format 2): measured 0.30x at 100,000 clips, 0.38x at
-    20,000 (the fixed costs weigh more there). A memory
-    ratio, not a timing; the per-clip figure does not depend on ``n``."""
+    clips as one list in index.json (format 2): measured 0.30x at 100,000 clips and 0.38x
+    at 20,000 (fixed costs weigh more there). A memory ratio, not a timing."""
     clips = (record(i) for i in range(n))
     table = tmp_path / "clips.jsonl"
     with open(table, "wb") as fh:
