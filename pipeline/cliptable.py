@@ -51,7 +51,8 @@ class ClipTable(Sequence):
 
     def __init__(self, names: Sequence[str], paths: Sequence[str],
                  categories: Sequence[str | None], numbers: dict[str, np.ndarray]) -> None:
-        self.names, self.paths, self.categories = list(names), list(paths), list(categories)
+        self.names, self.paths, self.categories = (
+            c if type(c) is list else list(c) for c in (names, paths, categories))
         self.numbers = {k: np.asarray(numbers[k]) for k, _ in NUMBERS}
         n = len(self.names)
         if not (len(self.paths) == len(self.categories) == n
