@@ -4,13 +4,18 @@ A bank is a folder:
 
 - ``spectra.npy``: ``(N, bins, frames)`` [0, 1] log-magnitude spectrograms
   (float16 or float32), memory-mapped on read;
-- ``index.json``: the format version, the audio spec, the resolved settings and,
-  per clip (row order), its name, relative source path, category, original sample
-  rate, channels, duration, peak dBFS and a size + mtime fingerprint;
+- ``index.json``: the format version, the audio spec, the resolved settings, the clip
+  count and the name of the clip table;
+- ``clips-<digest>.jsonl``: the clip table (:mod:`pipeline.cliptable`), one line per clip
+  in row order: its name, relative source path, category, original sample rate,
+  channels, duration, peak dBFS and a size + mtime fingerprint. The name holds the first
+  16 hex digits of the file's SHA-256, so a new table never replaces the one the
+  current index names (format 2 held the clips in ``index.json``; still read);
 - ``ingest-report.json``: what was accepted, skipped and ignored, and why.
 
-Writes go to temporary names first and are renamed into place, so an
-interrupted ingest leaves the previous bank readable.
+Writes go to temporary names first and are renamed into place (the clip table, the
+spectra, then the index that names the table), so an interrupted ingest leaves the
+previous bank readable.
 """
 
 from __future__ import annotations
@@ -18,6 +23,8 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -25,25 +32,30 @@ from typing import Any
 import numpy as np
 
 from pipeline import files
+from pipeline.cliptable import ClipTable, damaged, read_clip_lines
 from pipeline.config import AudioSpec, Settings, settings_from_dict, spec_from_dict
 from pipeline.errors import BankError, PresetError
 
-BANK_FORMAT = 2  # 2: spectra analysed after AudioSpec.analysis_pad of silence
+BANK_FORMAT = 3  # 2: spectra analysed after AudioSpec.analysis_pad of silence; 3: clips.jsonl
+OLDEST_READ = 2  # format 2 (clips inside index.json) has the same spectra: still opened
 SPECTRA_FILE = "spectra.npy"
 INDEX_FILE = "index.json"
+CLIPS_FILE = "clips.jsonl"  # the clip table's temporary; committed as clips-<digest>.jsonl
 REPORT_FILE = "ingest-report.json"
 STAGING_FILE = "ingest-staging.npy"  # decoded rows while an ingest runs (a temporary)
-BANK_FILES = (SPECTRA_FILE, INDEX_FILE, REPORT_FILE, STAGING_FILE)
+BANK_FILES = (SPECTRA_FILE, INDEX_FILE, CLIPS_FILE, REPORT_FILE, STAGING_FILE)
+_TABLE_NAME = re.compile(r"clips-[0-9a-f]{16}\.jsonl")
 
 
 @dataclass
 class Bank:
-    """An opened bank. ``spectra`` is a read-only memory map."""
+    """An opened bank. ``spectra`` is a read-only memory map; ``clips`` the clip table
+    (columns, and a sequence of per-clip dicts built on demand)."""
 
     path: Path
     audio: AudioSpec
     settings: dict[str, Any]
-    clips: list[dict[str, Any]]
+    clips: ClipTable
     spectra: np.ndarray = field(repr=False)
 
     def __len__(self) -> int:
@@ -51,7 +63,17 @@ class Bank:
 
     @property
     def names(self) -> list[str]:
-        return [c["name"] for c in self.clips]
+        return list(self.clips.names)
+
+    @property
+    def paths(self) -> list[str]:
+        """Each clip's path relative to the library folder, in row order."""
+        return list(self.clips.paths)
+
+    @property
+    def categories_per_clip(self) -> list[str | None]:
+        """Each clip's category in row order (``None``: directly in SOURCE)."""
+        return list(self.clips.categories)
 
     def fingerprint(self) -> str:
         """SHA-256 of the clip names and every spectrum: two banks whose clips share names
@@ -60,14 +82,14 @@ class Bank:
         Raises :class:`BankError` naming the clip if a spectrum holds NaN or infinite
         values (a damaged file: training would only say that its loss became non-finite).
         """
-        h = hashlib.sha256("\n".join(self.names).encode("utf-8") + b"\0")
+        h = hashlib.sha256("\n".join(self.clips.names).encode("utf-8") + b"\0")
         h.update(f"{self.spectra.dtype.str}{tuple(self.spectra.shape)}".encode())
         step = max(1, (64 << 20) // max(1, self.spectra[:1].nbytes))
         for i in range(0, len(self.spectra), step):
             chunk = np.ascontiguousarray(self.spectra[i : i + step])
             bad = np.flatnonzero(~np.isfinite(chunk.reshape(len(chunk), -1)).all(axis=1))
             if bad.size:
-                raise BankError(f"{self.path / SPECTRA_FILE}: clip {self.names[i + bad[0]]} "
+                raise BankError(f"{self.path / SPECTRA_FILE}: clip {self.clips.names[i + bad[0]]} "
                                 "holds NaN or infinite values (a damaged file; delete the bank "
                                 "and ingest again)")
             h.update(chunk.tobytes())
@@ -76,7 +98,7 @@ class Bank:
     @property
     def categories(self) -> list[str]:
         """Sorted category names; clips directly in SOURCE have category ``None``."""
-        return sorted({c["category"] for c in self.clips if c.get("category")})
+        return sorted({c for c in self.clips.categories if c})
 
 
 def read_json(path: Path, what: str) -> Any:
@@ -148,7 +170,7 @@ class BankWriter:
 
     >>> w = BankWriter(bank_dir, spec, n_clips)   # doctest: +SKIP
     >>> w.put(0, unit_spectrogram)                # any order, each row once
-    >>> w.commit(clips, settings, report)
+    >>> w.commit(clips, settings, report)         # clips: dicts or a ClipTable
     """
 
     def __init__(self, path: Path, audio: AudioSpec, n_clips: int) -> None:
@@ -163,11 +185,19 @@ class BankWriter:
         self._rows.put(row, unit)
 
     def commit(
-        self, clips: list[dict[str, Any]], settings: dict[str, Any], report: dict[str, Any]
+        self, clips: Sequence[dict[str, Any]] | ClipTable, settings: dict[str, Any],
+        report: dict[str, Any]
     ) -> None:
         if len(clips) != self._rows.shape[0]:
             raise ValueError("one index entry per spectra row is required")
+        if not isinstance(clips, ClipTable):
+            clips = ClipTable.from_records(clips, "the clips given to BankWriter")
         self._rows.close(sync=True)
+        # Everything that can fail for lack of space is written before the first rename, so
+        # a full disk leaves the previous spectra, clip table and index together.
+        digest = hashlib.sha256()
+        table_tmp = files.write_temp(self.path / CLIPS_FILE, _hashed(clips.lines(), digest))
+        table = self.path / f"clips-{digest.hexdigest()[:16]}.jsonl"
         index = {
             "format": BANK_FORMAT,
             "tool": "shotsmith",
@@ -175,17 +205,30 @@ class BankWriter:
             "audio": settings["audio"],
             "settings": settings,
             "shape": [len(clips), self.audio.n_bins, self.audio.n_frames],
-            "clips": clips,
+            "clip_count": len(clips),
+            "clips_file": table.name,
         }
-        # Everything that can fail for lack of space is written before the first rename, so
-        # a full disk leaves the previous spectra and index together.
-        index_tmp = files.write_temp(self.path / INDEX_FILE, files.json_bytes(index))
+        new_table = not table.exists()
         try:
+            index_tmp = files.write_temp(self.path / INDEX_FILE, files.json_bytes(index))
+        except BaseException:
+            table_tmp.unlink(missing_ok=True)
+            raise
+        try:
+            files.commit(table_tmp, table)  # a new name: the current index still reads its own
             files.commit(self._tmp, self.path / SPECTRA_FILE)
         except BaseException:
             index_tmp.unlink(missing_ok=True)
+            if new_table:
+                table.unlink(missing_ok=True)
             raise
         files.commit(index_tmp, self.path / INDEX_FILE)
+        for old in self.path.iterdir():  # the tables no index names any more
+            if old != table and _TABLE_NAME.fullmatch(old.name):
+                try:
+                    old.unlink()
+                except OSError:
+                    pass  # left for the next ingest
         files.write_json_atomic(self.path / REPORT_FILE, report)
 
     def abort(self) -> None:
@@ -193,58 +236,65 @@ class BankWriter:
         self._tmp.unlink(missing_ok=True)
 
 
+def _hashed(chunks: Iterator[bytes], digest: Any) -> Iterator[bytes]:
+    for chunk in chunks:
+        digest.update(chunk)
+        yield chunk
+
+
 def read_index(path: Path) -> dict[str, Any]:
-    """The parsed ``index.json`` of a bank folder, checked for format."""
+    """The parsed ``index.json`` of a bank folder, checked for format and header fields.
+
+    Format 3 holds the header only (:func:`read_clips` reads the clip table); format 2
+    still holds its ``clips`` list.
+    """
     path = Path(path)
     if not path.is_dir():
         raise BankError(f"{path}: bank folder not found (run 'shotsmith ingest' first)")
-    index = read_json(path / INDEX_FILE, "bank index")
-    if not isinstance(index, dict) or index.get("tool") != "shotsmith" or "clips" not in index:
-        raise BankError(f"{path / INDEX_FILE}: not a shotsmith bank index")
+    where = path / INDEX_FILE
+    index = read_json(where, "bank index")
+    if not isinstance(index, dict) or index.get("tool") != "shotsmith" or not (
+            "clips" in index or "clip_count" in index):
+        raise BankError(f"{where}: not a shotsmith bank index")
     version = index.get("format", 0)
     if not isinstance(version, int) or version > BANK_FORMAT:
         raise BankError(
-            f"{path / INDEX_FILE}: bank format {version} is newer than this "
+            f"{where}: bank format {version} is newer than this "
             f"shotsmith reads ({BANK_FORMAT}); upgrade shotsmith"
         )
-    if version < BANK_FORMAT:
+    if version < OLDEST_READ:
         raise BankError(f"{path}: bank format {version} was made by an older shotsmith "
                         f"(this one reads {BANK_FORMAT}); re-run 'shotsmith ingest'")
-    _check_index(path / INDEX_FILE, index)
+    if not isinstance(index.get("audio"), dict):
+        raise damaged(where, "audio is not a table of settings")
+    if not isinstance(index.get("settings", {}), dict):
+        raise damaged(where, "settings is not a table of settings")
+    if version == 2:
+        if not isinstance(index.get("clips"), list):
+            raise damaged(where, "clips is not a list")
+        return index
+    count, name = index.get("clip_count"), index.get("clips_file")
+    if isinstance(count, bool) or not isinstance(count, int) or count < 0:
+        raise damaged(where, f"clip_count is {count!r}")
+    if not isinstance(name, str) or Path(name).name != name or name in ("", ".", ".."):
+        raise damaged(where, f"clips_file is {name!r}")
     return index
 
 
-def _check_index(where: Path, index: dict[str, Any]) -> None:
-    """Every field the commands read, of the type they read it as (a damaged or hand-edited
-    index is refused here in one line, not as a TypeError deep in training)."""
-    def bad(what: str) -> BankError:
-        return BankError(f"{where}: damaged bank index ({what}; re-run ingest)")
-
-    if not isinstance(index.get("audio"), dict):
-        raise bad("audio is not a table of settings")
-    if not isinstance(index.get("settings", {}), dict):
-        raise bad("settings is not a table of settings")
-    clips = index["clips"]
-    if not isinstance(clips, list):
-        raise bad("clips is not a list")
-    seen: set[str] = set()
-    for i, c in enumerate(clips):
-        if not isinstance(c, dict):
-            raise bad(f"clip {i} is not a record")
-        name, cat = c.get("name"), c.get("category")
-        if not isinstance(name, str) or not name or name in seen:
-            raise bad(f"clip {i} has the name {name!r}" + (" twice" if name in seen else ""))
-        if cat is not None and (not isinstance(cat, str) or not cat):
-            raise bad(f"clip {name} has the category {cat!r}")
-        if not isinstance(c.get("path"), str):
-            raise bad(f"clip {name} has the path {c.get('path')!r}")
-        seen.add(name)
+def read_clips(path: Path, index: dict[str, Any]) -> ClipTable:
+    """The clip table of the bank in ``path`` whose ``index`` :func:`read_index` returned:
+    streamed from the clips file in chunks (format 3), or from the index's list (format 2)."""
+    path = Path(path)
+    if index.get("format") == 2:
+        return ClipTable.from_records(index["clips"], path / INDEX_FILE)
+    return read_clip_lines(path / index["clips_file"], index["clip_count"])
 
 
 def open_bank(path: Path) -> Bank:
     """Open a bank folder; ``spectra`` is memory-mapped read-only."""
     path = Path(path)
     index = read_index(path)
+    clips = read_clips(path, index)
     try:
         audio = spec_from_dict(AudioSpec, index["audio"], "audio")
     except PresetError as exc:
@@ -255,13 +305,13 @@ def open_bank(path: Path) -> Bank:
         raise BankError(f"{path / SPECTRA_FILE}: spectra not found (re-run ingest)") from None
     except (OSError, ValueError) as exc:
         raise BankError(f"{path / SPECTRA_FILE}: unreadable spectra ({exc})") from None
-    expected = (len(index["clips"]), audio.n_bins, audio.n_frames)
+    expected = (len(clips), audio.n_bins, audio.n_frames)
     if spectra.shape != expected:
         raise BankError(
             f"{path / SPECTRA_FILE}: shape {spectra.shape} does not match the index "
             f"{expected} (re-run ingest)"
         )
-    return Bank(path, audio, index.get("settings", {}), index["clips"], spectra)
+    return Bank(path, audio, index.get("settings", {}), clips, spectra)
 
 
 def stored_settings(path: str | Path) -> Settings | None:

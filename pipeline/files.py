@@ -23,7 +23,7 @@ import json
 import os
 import re
 import secrets
-from collections.abc import Callable, Collection
+from collections.abc import Callable, Collection, Iterable
 from pathlib import Path
 from typing import Any
 
@@ -72,8 +72,10 @@ def _write_all(fd: int, data: bytes | memoryview) -> None:
         view = view[os.write(fd, view) :]
 
 
-def write_temp(path: str | Path, data: bytes | memoryview, *, sync: bool = True) -> Path:
-    """Write ``data`` to a new temporary file beside ``path``; the caller commits it.
+def write_temp(path: str | Path, data: bytes | memoryview | Iterable[bytes], *,
+               sync: bool = True) -> Path:
+    """Write ``data`` (bytes, or an iterable of chunks: a file streamed as it is made) to
+    a new temporary file beside ``path``; the caller commits it.
 
     Raises :class:`OutputError` naming ``path`` (and removes the temporary) when it
     cannot be written: a full disk, a read-only folder, a name too long.
@@ -87,7 +89,8 @@ def write_temp(path: str | Path, data: bytes | memoryview, *, sync: bool = True)
         raise cannot_write(path, exc) from None
     try:
         try:
-            _write_all(fd, data)
+            for chunk in (data,) if isinstance(data, (bytes, bytearray, memoryview)) else data:
+                _write_all(fd, chunk)
             if sync:
                 os.fsync(fd)
         finally:

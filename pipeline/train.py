@@ -281,13 +281,13 @@ class RunFiles:
         """
         if not self.enabled:
             return
-        cats = [c.get("category") for c in self.bank.clips]
+        cats = self.bank.categories_per_clip
         samplers = fit_samplers(kept.mu, cats) if final else None
         save_atomic(model_payload(
             settings=self.settings, state_dict=kept.weights, history=st.history, best=st.best,
             clip_names=self.bank.names, clip_categories=cats, mu=kept.mu, logvar=kept.logvar,
             split={"train": st.train_rows, "val": st.val_rows}, bank=self.bank_info,
-            samplers=samplers, clip_paths=[str(c.get("path", "")) for c in self.bank.clips]),
+            samplers=samplers, clip_paths=self.bank.paths),
             self.model_path)
 
     def save_checkpoint(self, st: TrainState, model: torch.nn.Module,
@@ -367,7 +367,7 @@ def make_optimizer(model: torch.nn.Module, t: TrainSpec) -> torch.optim.AdamW:
 
 def fresh_state(model: torch.nn.Module, bank: Bank, t: TrainSpec, device) -> TrainState:
     """A new run: the seeded stratified split, the template at the training clips' mean."""
-    cats = [c.get("category") for c in bank.clips]
+    cats = bank.categories_per_clip
     train_rows, val_rows = split_indices(cats, val_fraction=t.val_fraction, seed=t.seed)
     init_template(model, mean_spectrogram(bank.spectra, train_rows).to(device))
     return TrainState(train_rows=train_rows, val_rows=val_rows)

@@ -340,36 +340,44 @@ def test_a_float32_bank_trains_without_a_warning(tmp_path):
     assert "Warning" not in run.stderr, run.stderr
 
 
-@pytest.mark.parametrize(("damage", "why"), [
-    (lambda d: d.update(clips=5), "clips is not a list"),
-    (lambda d: d["clips"].__setitem__(0, 3), "clip 0 is not a record"),
-    (lambda d: d["clips"][0].pop("name"), "clip 0 has the name None"),
-    (lambda d: d["clips"][0].__setitem__("name", 7), "clip 0 has the name 7"),
-    (lambda d: d["clips"][1].__setitem__("name", d["clips"][0]["name"]), "twice"),
-    (lambda d: d["clips"][0].__setitem__("category", 7), "has the category 7"),
-    (lambda d: d["clips"][0].__setitem__("path", None), "has the path None"),
-    (lambda d: d.update(audio="x"), "audio is not a table"),
-    (lambda d: d.update(settings=[1]), "settings is not a table"),
-], ids=["clips int", "clip int", "no name", "name int", "names twice", "category int",
-        "path none", "audio text", "settings list"])
-def test_a_damaged_bank_index_is_one_line_and_ingest_rebuilds_it(w, tmp_path, damage, why):
+@pytest.mark.parametrize(("damage", "why", "where"), [
+    (lambda d: d.update(clip_count=-1), "clip_count is -1", "index.json"),
+    (lambda d: d.update(clips_file="../x.jsonl"), "clips_file is '../x.jsonl'", "index.json"),
+    (lambda d: d["clips"].__setitem__(0, 3), "line 1 is not a record", "clips"),
+    (lambda d: d["clips"][0].pop("name"), "line 1 has the name None", "clips"),
+    (lambda d: d["clips"][0].__setitem__("name", 7), "line 1 has the name 7", "clips"),
+    (lambda d: d["clips"][1].__setitem__("name", d["clips"][0]["name"]), "twice", "clips"),
+    (lambda d: d["clips"][0].__setitem__("category", 7), "has the category 7", "clips"),
+    (lambda d: d["clips"][0].__setitem__("path", None), "has the path None", "clips"),
+    (lambda d: d["clips"][0].__setitem__("size", "big"), "has the size 'big'", "clips"),
+    (lambda d: d["clips"].pop(), "the file is cut short", "clips"),
+    (lambda d: d.update(audio="x"), "audio is not a table", "index.json"),
+    (lambda d: d.update(settings=[1]), "settings is not a table", "index.json"),
+], ids=["count", "clips file", "clip int", "no name", "name int", "names twice", "category int",
+        "path none", "size text", "a line short", "audio text", "settings list"])
+def test_a_damaged_bank_index_is_one_line_and_ingest_rebuilds_it(w, tmp_path, damage, why,
+                                                                  where):
     """Found beyond issue 13 (a sibling of its model-file item): a hand-edited or damaged
-    index.json gave TypeErrors and KeyErrors in train and inspect, and one in ingest."""
-    import json
+    index.json gave TypeErrors and KeyErrors in train and inspect, and one in ingest. The
+    clip table is its own file since bank format 3 (the damage goes there)."""
     import shutil
 
     bank = tmp_path / "bank"
     shutil.copytree(w["bank"], bank)
     index = json.loads((bank / "index.json").read_text("utf-8"))
+    table = bank / index["clips_file"]
+    index["clips"] = [json.loads(line) for line in table.read_text("utf-8").splitlines()]
     damage(index)
+    table.write_text("".join(json.dumps(c) + "\n" for c in index.pop("clips")), "utf-8")
     (bank / "index.json").write_text(json.dumps(index), "utf-8")
+    named = bank / "index.json" if where == "index.json" else table
     for args in (["train", str(bank), "--model", str(tmp_path / "m.pt")],
                  ["inspect", str(w["model"]), "--out", str(tmp_path / "x"), "--bank", str(bank)]):
         result = runner.invoke(app, args)
         assert result.exit_code == 1 and "Traceback" not in result.output, result.output
         line = result.stderr.strip()
-        assert line.startswith(f"error: {bank / 'index.json'}: damaged bank index (")
-        assert why in line and "\n" not in line, line
+        assert line.startswith(f"error: {named}: damaged bank index ("), line
+        assert why in line and line.endswith("; re-run ingest)") and "\n" not in line, line
     assert not (tmp_path / "m.pt").exists()
     result = runner.invoke(app, ["ingest", str(w["src"]), "--bank", str(bank), "--preset", "tiny"])
     assert result.exit_code == 0, result.output
@@ -383,13 +391,15 @@ def test_nan_in_a_bank_spectrum_names_the_file_and_clip(w, tmp_path):
 
     import numpy as np
 
+    from pipeline.bank import open_bank
+
     bank = tmp_path / "bank"
     shutil.copytree(w["bank"], bank)
     spectra = np.load(bank / "spectra.npy", mmap_mode="r+")
     spectra[2, 10, 5] = np.nan
     spectra.flush()
     del spectra
-    name = json.loads((bank / "index.json").read_text("utf-8"))["clips"][2]["name"]
+    name = open_bank(bank).names[2]
     result = runner.invoke(app, ["train", str(bank), "--model", str(tmp_path / "m.pt")])
     assert result.exit_code == 1, result.output
     assert result.stderr.strip() == (f"error: {bank / 'spectra.npy'}: clip {name} holds NaN "

@@ -454,7 +454,7 @@ def test_a_real_full_disk_during_generate_names_the_reason(model_file, own_tmp):
     assert seen["items"] == seen["wavs"] and 0 < len(seen["wavs"]) < 40
 
 
-@pytest.mark.parametrize("where", ["index", "rows"])
+@pytest.mark.parametrize("where", ["index", "clips", "spectra", "rows"])
 def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, where):
     from pipeline import bank, files
     from pipeline.bank import open_bank
@@ -473,16 +473,28 @@ def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, 
     def full(*a, **k):
         raise OSError(errno.ENOSPC, "No space left on device")
 
-    if where == "index":  # the new index.json cannot be written
+    if where in ("index", "clips"):  # the new index.json or clip table cannot be written
         real_write = files._write_all
+        mark = b'"clip_count"' if where == "index" else b'"mtime_ns"'
 
         def write_all(fd, data):
-            if b'"clips"' in bytes(data):
+            if mark in bytes(data):
                 full()
             return real_write(fd, data)
 
         monkeypatch.setattr(files, "_write_all", write_all)
-        named = tmp_path / "bank" / "index.json"
+        named = tmp_path / "bank" / ("index.json" if where == "index" else "clips.jsonl")
+    elif where == "spectra":  # the rename of the spectra fails after the clip table's
+        real_commit = files.commit
+
+        def commit(tmp, path, **k):
+            if Path(path).name == "spectra.npy":
+                Path(tmp).unlink()
+                raise files.cannot_write(path, OSError(errno.ENOSPC, "No space left on device"))
+            return real_commit(tmp, path, **k)
+
+        monkeypatch.setattr(files, "commit", commit)
+        named = tmp_path / "bank" / "spectra.npy"
     else:  # a spectrogram row cannot be written (a memory map would raise SIGBUS here)
         monkeypatch.setattr(bank.os, "pwrite", full)
         named = tmp_path / "bank"
@@ -493,7 +505,10 @@ def test_full_disk_during_ingest_keeps_the_previous_bank(tmp_path, monkeypatch, 
     assert result.stderr.strip() == f"error: {named}: cannot write (No space left on device)"
     kept = open_bank(tmp_path / "bank")  # the previous bank, whole
     assert len(kept) == 3 and np.array_equal(np.array(kept.spectra), old_rows)
+    assert kept.clips == old.clips
     assert not [p.name for p in (tmp_path / "bank").iterdir() if p.name.startswith(".")]
+    index = json.loads((tmp_path / "bank" / "index.json").read_text("utf-8"))
+    assert [p.name for p in (tmp_path / "bank").glob("clips-*")] == [index["clips_file"]]
 
 
 def test_what_killed_ingests_left_in_the_bank_is_removed(tmp_path):
@@ -506,7 +521,7 @@ def test_what_killed_ingests_left_in_the_bank_is_removed(tmp_path):
     ingest_folder(src, bank, load_settings("tiny"), jobs=1)
     dead = int(Path("/proc/sys/kernel/pid_max").read_text()) + 1  # no such process
     left = [bank / f".ingest-staging.npy.tmp-{dead}-a1b2c3", bank / f".spectra.npy.tmp-{dead}",
-            bank / f".index.json.tmp-{dead}-00ff00"]
+            bank / f".index.json.tmp-{dead}-00ff00", bank / f".clips.jsonl.tmp-{dead}-0a0b0c"]
     live = bank / f".ingest-staging.npy.tmp-{os.getpid()}-a1b2c3"  # an ingest running now
     mine = bank / f".notes.txt.tmp-{dead}"  # not a bank file: not ours to remove
     for p in (*left, live, mine):

@@ -3,7 +3,7 @@
 Every sound comes from a folder's manifest (through :func:`pipeline.manifest.load_manifest`)
 and is accepted only when its file name stays inside that folder: no absolute paths, no
 ``..``, and no symbolic link that resolves outside the folder. The bank gives each clip's
-category and the folder it was ingested from (``index.json``), so the nearest training
+category and the folder it was ingested from (its index), so the nearest training
 sound of a rendered one can be found and played.
 """
 
@@ -124,28 +124,28 @@ def read_folders(folders: list[str | Path]) -> Catalog:
 
 @dataclass(frozen=True)
 class BankRef:
-    """What the page needs from a bank: clips by name, the audio spec and the source folder."""
+    """What the page needs from a bank: its clip table, the audio spec and the source folder."""
 
     path: Path
     audio: Any
-    clips: dict[str, dict[str, Any]]
+    clips: Any  # pipeline.cliptable.ClipTable
     source: Path | None
 
     def category(self, name: str | None) -> str | None:
-        clip = self.clips.get(name) if isinstance(name, str) else None
-        return clip.get("category") if clip else None
+        row = self.clips.row(name) if isinstance(name, str) else None
+        return None if row is None else self.clips.categories[row]
 
     def source_file(self, name: str) -> Path | None:
         """The source file of clip ``name``, when it still lies inside the ingested folder."""
-        clip = self.clips.get(name)
-        if clip is None or self.source is None or not isinstance(clip.get("path"), str):
+        row = self.clips.row(name) if isinstance(name, str) else None
+        if row is None or self.source is None:
             return None
-        return contained_file(self.source, clip["path"])
+        return contained_file(self.source, self.clips.paths[row])
 
 
 def read_bank(path: str | Path) -> BankRef:
     """Open a bank's index (not its spectra): clips, audio spec, library folder."""
-    from pipeline.bank import read_index, source_folder
+    from pipeline.bank import read_clips, read_index, source_folder
     from pipeline.config import AudioSpec, spec_from_dict
     from pipeline.errors import BankError, PresetError
 
@@ -155,7 +155,7 @@ def read_bank(path: str | Path) -> BankRef:
         audio = spec_from_dict(AudioSpec, index["audio"], "audio")
     except (PresetError, KeyError, TypeError) as exc:
         raise BankError(f"{path}: bad audio settings in the index ({exc})") from None
-    clips = {c["name"]: c for c in index["clips"] if isinstance(c, dict) and "name" in c}
+    clips = read_clips(path, index)
     source = source_folder(path)
     source = source.resolve() if source is not None and source.is_dir() else None
     return BankRef(path, audio, clips, source)

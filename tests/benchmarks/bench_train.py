@@ -277,7 +277,7 @@ def build_banks(root: Path, n: int, presets: tuple[str, ...] = ("tiny", "drums")
         index["settings"]["preset"] = preset  # workers read the preset's model settings
         (path / "index.json").write_text(json.dumps(index))
         banks[preset] = path
-        print(f"# {preset} bank: {len(index['clips'])} clips in {time.perf_counter() - t0:.1f} s",
+        print(f"# {preset} bank: {index['clip_count']} clips in {time.perf_counter() - t0:.1f} s",
               flush=True)
     return banks
 
