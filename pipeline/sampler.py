@@ -34,7 +34,7 @@ import numpy as np
 from pipeline.errors import ParameterError
 
 MAX_COMPONENTS = 8
-LIBRARY_BANDWIDTH = 0.4  # the library's kernels: this fraction of all codes' spread
+LIBRARY_BANDWIDTH = 0.3  # the library's kernels: this fraction of all codes' spread
 NEAR_BANDWIDTH = 0.6  # a category's kernels: this fraction of its codes' spread
 SHRINK_POINTS = 4.0
 POINTS_PER_PARAMETER_SET = 2  # a component needs about 2 (D + 1) codes of its own
