@@ -131,7 +131,8 @@ def gate_quiet_bins(U: np.ndarray, spec: AudioSpec, gate_db: float) -> np.ndarra
     (0, the ``spec.db_floor``) it predicts values just above the floor instead. One such
     bin is inaudible, but hundreds of them in every frame sum to a bed of noise near 60 dB
     below the peak that never ends, where real one-shots fall to digital silence. The
-    presets gate 1 dB above the -100 dB floor (DEVELOPERS.md, "Tails", has the sweep).
+    presets gate 1 dB above the -100 dB floor (DEVELOPERS.md, "Session-ready audio", has
+    the sweep).
     """
     if gate_db <= spec.db_floor:
         return U
