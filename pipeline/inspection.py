@@ -197,31 +197,24 @@ def _paired_ratio(y_ref: np.ndarray, y_dec: np.ndarray, sr: int) -> float:
     return float(np.median(quality.paired_distance_ratio(B, A, spacing)))
 
 
-def _decode(mf, codes: np.ndarray) -> np.ndarray:
-    """Codes decoded as the commands render them: behind the gate on the decoder's bed."""
-    from pipeline.spectra import gate_quiet_bins
-
-    return gate_quiet_bins(np.asarray(mf.decode(codes), np.float32), mf.audio,
-                           mf.settings.render.gate_db)
-
-
 def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[int],
                             rng: np.random.Generator, seed: int):
     """The ``reconstruction`` section and the figure's originals / reconstructions."""
+    from pipeline.sounds import decode_for_render
     from pipeline.spectra import unit_to_magnitude
 
     audio = mf.audio
     out: dict[str, Any] = {"clips": int(len(idx)), "source": source}
     if bank is None:
         why = "no bank given: pass --bank with the bank the model was trained on"
-        decoded = _decode(mf, np.asarray(mf.mu, np.float32)[rows])
+        decoded = decode_for_render(mf, np.asarray(mf.mu, np.float32)[rows], mf.settings.render)
         out.update(decoded=_not_measured(why), phase=_not_measured(why),
                    rating="not measured", verdict=f"not measured: {why}")
         return out, None, decoded
 
-    row_of = {name: r for r, name in enumerate(bank.names)}
+    row_of = bank.clips.row
     names = list(mf.clip_names)
-    present = np.array([i for i in idx if names[i] in row_of], dtype=np.int64)
+    present = np.array([i for i in idx if row_of(names[i]) is not None], dtype=np.int64)
     if present.size == 0:
         raise BankError(f"{bank.path}: none of the model's held-out clips are in this bank "
                         "(is it the bank the model was trained on?)")
@@ -237,8 +230,8 @@ def _measure_reconstruction(mf, bank, idx: np.ndarray, source: str, rows: list[i
     sc, lsd, kept = np.zeros(len(present)), np.zeros(len(present)), {}
     for a in range(0, len(present), DECODE_BATCH):  # in chunks: a large library stays small
         part = present[a : a + DECODE_BATCH]
-        U_ref = np.stack([np.asarray(bank.spectra[row_of[names[i]]], np.float32) for i in part])
-        U_dec = _decode(mf, mu[part])
+        U_ref = np.stack([np.asarray(bank.spectra[row_of(names[i])], np.float32) for i in part])
+        U_dec = decode_for_render(mf, mu[part], mf.settings.render)
         S_ref, S_dec = unit_to_magnitude(U_ref, audio), unit_to_magnitude(U_dec, audio)
         sc[a : a + len(part)], lsd[a : a + len(part)] = _spectral_errors(S_ref, S_dec)
         for j in range(len(part)):
@@ -332,7 +325,7 @@ def inspect_model(
     recon, U_ref, U_dec = _measure_reconstruction(
         mf, bank_obj, idx, source, rows, np.random.default_rng(seed), seed)
     if bank_obj is not None:  # rows whose clip the bank lacks were dropped
-        rows = [i for i in rows if names[i] in set(bank_obj.names)]
+        rows = [i for i in rows if bank_obj.clips.row(names[i]) is not None]
 
     model_name = Path(mf.path).name
     report.plot_latent_map(mu, cats, prior, out_dir / LATENT_MAP_FILE,

@@ -254,12 +254,17 @@ def render_spec(mf, render: RenderSpec | None) -> RenderSpec:
     return render or mf.settings.render
 
 
+def decode_for_render(mf, codes: np.ndarray, render: RenderSpec) -> np.ndarray:
+    """Codes to [0, 1] spectra as every command renders them: decoded, then bins below
+    ``render.gate_db`` silenced (:func:`pipeline.spectra.gate_quiet_bins`)."""
+    return spectra.gate_quiet_bins(mf.decode(codes), mf.audio, render.gate_db)
+
+
 def decoded_batches(mf, plan: Plan, render: RenderSpec
                     ) -> Iterator[tuple[np.ndarray, list[dict[str, Any]]]]:
-    """The plan's codes decoded ``render.batch_size`` at a time, bins below
-    ``render.gate_db`` silenced (:func:`pipeline.spectra.gate_quiet_bins`), each item given
-    its code and its nearest training clip (distance also relative to the clips' typical
-    spacing)."""
+    """The plan's codes through :func:`decode_for_render`, ``render.batch_size`` at a time,
+    each item given its code and its nearest training clip (distance also relative to the
+    clips' typical spacing)."""
     idx, dist = latent.nearest_codes(plan.codes, mf.mu)
     spacing = max(latent.typical_spacing(mf.mu), 1e-12)
     for item, z, i, d in zip(plan.items, plan.codes, idx, dist):
@@ -268,8 +273,7 @@ def decoded_batches(mf, plan: Plan, render: RenderSpec
                            "distance_ratio": float(d / spacing)}
     for start in range(0, len(plan.items), render.batch_size):
         stop = start + render.batch_size
-        U = spectra.gate_quiet_bins(mf.decode(plan.codes[start:stop]), mf.audio, render.gate_db)
-        yield U, plan.items[start:stop]
+        yield decode_for_render(mf, plan.codes[start:stop], render), plan.items[start:stop]
 
 
 def render_plan(mf, plan: Plan, render: RenderSpec | None = None, *,

@@ -56,9 +56,9 @@ from pipeline import quality  # noqa: E402
 from pipeline.config import AudioSpec, load_settings  # noqa: E402
 from pipeline.frontend import load_clip  # noqa: E402
 from pipeline.manifest import load_manifest  # noqa: E402
+from pipeline.sounds import decode_for_render  # noqa: E402
 from pipeline.spectra import (  # noqa: E402
     clip_to_unit,
-    gate_quiet_bins,
     log_spectral_distance,
     spectral_convergence_db,
     unit_to_magnitude,
@@ -103,8 +103,8 @@ def _render_codes(mf, Z: np.ndarray, out: Path, render) -> list[np.ndarray]:
     from pipeline.render import render_spectra
 
     items = [{"stem": f"recon-{i:04d}", "kind": "reconstruction"} for i in range(len(Z))]
-    batches = ((gate_quiet_bins(mf.decode(Z[s : s + 32]), mf.audio, render.gate_db),
-                items[s : s + 32]) for s in range(0, len(Z), 32))
+    batches = ((decode_for_render(mf, Z[s : s + 32], render), items[s : s + 32])
+               for s in range(0, len(Z), 32))
     render_spectra(batches, out, mf.audio, render, seed=1)
     return _wavs(out)[0]
 
